@@ -1,0 +1,44 @@
+"""tallgam: generalized additive models fitted to data larger than memory.
+
+Data stream from Parquet (or anything DuckDB reads) in batches; numba kernels build the
+penalized normal equations; smoothing parameters and coefficients come from a small
+dense stage. See ``DEVELOPERS.md`` for the architecture and ``docs/`` for the guides.
+"""
+
+from .errors import (
+    ConvergenceWarning,
+    DataError,
+    FitError,
+    ModelFileError,
+    SpecError,
+    TallgamError,
+    TallgamWarning,
+)
+from .families import get_family
+from .links import get_link
+from .model import Model
+from .modelfile import load
+from .result import FitResult
+from .sources import sql
+from .terms import categorical, linear, spline
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "ConvergenceWarning",
+    "DataError",
+    "FitError",
+    "FitResult",
+    "Model",
+    "ModelFileError",
+    "SpecError",
+    "TallgamError",
+    "TallgamWarning",
+    "categorical",
+    "get_family",
+    "get_link",
+    "linear",
+    "load",
+    "spline",
+    "sql",
+]

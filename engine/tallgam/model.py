@@ -1,0 +1,128 @@
+"""The model specification: response, family and link, terms, offsets and the data filter.
+
+A :class:`Model` is a plain, immutable description; :meth:`Model.fit` hands it with the
+data to the iteration driver (:mod:`tallgam.fitting`) and returns a
+:class:`~tallgam.result.FitResult`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+from .errors import SpecError
+from .families import Family, family_from_dict, resolve
+from .links import Link
+from .terms import TermSpec, spec_from_dict
+
+CRITERIA = ("reml", "gcv", "ubre", "fixed")
+MISSING = ("error", "drop")
+
+
+@dataclass(frozen=True)
+class Model:
+    """A generalized additive model to be fitted to a (possibly huge) data source.
+
+    Parameters
+    ----------
+    response : column name or DuckDB SQL expression of the response.
+    family : ``"gaussian"``, ``"poisson"``, ``"binomial"``, ``"gamma"``,
+        ``"inverse_gaussian"``, ``"tweedie"``, ``"negative_binomial"`` or a Family object.
+    link : link name or object; ``None`` takes the family's default.
+    terms : term specs (``tg.spline``, ``tg.linear``, ``tg.categorical``, ...).
+        An intercept is always included.
+    exposure : column or SQL expression; with the log link, ln(exposure) joins the offset
+        and sum-to-zero constraints and the default base levels are exposure-weighted.
+    offset : column or SQL expression added to the linear predictor.
+    weights : column or SQL expression of prior weights (e.g. claim counts for severity).
+    where : a SQL filter applied by DuckDB before anything else.
+    criterion : ``"reml"`` (default), ``"gcv"``, ``"ubre"`` (known scale) or ``"fixed"``.
+    missing : ``"error"`` (default) stops on NULL/NaN/inf in a used column; ``"drop"``
+        leaves such rows out and reports how many.
+    max_iterations : cap on PIRLS data passes.
+    tolerance : relative change of the penalized deviance that ends PIRLS.
+    """
+
+    response: str
+    family: str | Family = "gaussian"
+    link: str | Link | None = None
+    terms: Sequence[TermSpec] = field(default_factory=tuple)
+    exposure: str | None = None
+    offset: str | None = None
+    weights: str | None = None
+    where: str | None = None
+    criterion: str = "reml"
+    missing: str = "error"
+    max_iterations: int = 50
+    tolerance: float = 1e-8
+
+    def __post_init__(self):
+        object.__setattr__(self, "terms", tuple(self.terms))
+        fam, lnk = resolve(self.family, self.link)
+        object.__setattr__(self, "family", fam)
+        object.__setattr__(self, "link", lnk)
+        if not isinstance(self.response, str) or not self.response.strip():
+            raise SpecError("response must be a column name or SQL expression")
+        for t in self.terms:
+            if not isinstance(t, TermSpec):
+                raise SpecError(f"terms must be made with tg.spline/tg.linear/tg.categorical..., "
+                                f"got {t!r}")
+        if self.criterion not in CRITERIA:
+            raise SpecError(f"criterion must be one of {', '.join(CRITERIA)}, "
+                            f"got {self.criterion!r}")
+        if self.missing not in MISSING:
+            raise SpecError(f"missing must be one of {', '.join(MISSING)}, got {self.missing!r}")
+        if self.exposure is not None and lnk.name != "log":
+            raise SpecError(f"exposure needs the log link (the offset is ln(exposure)); the "
+                            f"model uses {lnk.name!r}. Use weights, or an explicit offset.")
+        if self.criterion == "ubre" and not fam.scale_known:
+            raise SpecError(f"UBRE needs a known scale; the {fam.name} family estimates it. "
+                            "Use criterion='reml' or 'gcv'.")
+        labels = [t.label for t in self.terms]
+        dup = {lab for lab in labels if labels.count(lab) > 1}
+        if dup:
+            raise SpecError(f"terms given twice: {', '.join(sorted(dup))}")
+        numeric = {c for t in self.terms if t.kind != "categorical" for c in t.inputs}
+        levels = {c for t in self.terms if t.kind == "categorical" for c in t.inputs}
+        both = numeric & levels
+        if both:
+            raise SpecError(f"column(s) {', '.join(sorted(both))} used both as numeric and as "
+                            "categorical; derive a copy with SQL for one of the uses")
+        if not (self.max_iterations >= 1):
+            raise SpecError("max_iterations must be at least 1")
+
+    def fit(self, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
+            progress=False):
+        """Fit the model to ``data`` (see :func:`tallgam.sources.open_source`).
+
+        ``batch_rows`` bounds the rows held in memory at once; ``threads`` the cores used
+        (default: all); ``progress`` is False, True (a bar on a terminal) or a callable
+        receiving :class:`tallgam.progress.Event` objects.
+        """
+        from .fitting import fit_model
+
+        return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress)
+
+    def to_dict(self) -> dict:
+        return {
+            "response": self.response,
+            "family": self.family.to_dict(),
+            "link": self.link.name,
+            "terms": [t.to_dict() for t in self.terms],
+            "exposure": self.exposure,
+            "offset": self.offset,
+            "weights": self.weights,
+            "where": self.where,
+            "criterion": self.criterion,
+            "missing": self.missing,
+            "max_iterations": self.max_iterations,
+            "tolerance": self.tolerance,
+        }
+
+    @classmethod
+    def from_dict(cls, d: dict) -> Model:
+        d = dict(d)
+        d["family"] = family_from_dict(d["family"]) if isinstance(d["family"], dict) else d[
+            "family"]
+        d["terms"] = [spec_from_dict(t) for t in d.get("terms", [])]
+        return cls(**d)

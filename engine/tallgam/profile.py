@@ -1,0 +1,170 @@
+"""The profile pass: one aggregate query over the filtered source.
+
+It returns the row count and, per used column, NULL and non-finite counts, min, max,
+mean and standard deviation; a histogram of values rounded to four significant digits
+(exact for integer-valued columns below 10 000, which pricing data is full of) from
+which knots are placed at quantiles; level counts of categorical columns; and counts with
+a few example values of rows that break a stated rule (e.g. negative claim counts).
+Memory is bounded by the number of distinct rounded values, never by the rows.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .sources import Source
+
+ROUND_DIGITS = 4  # significant digits kept in the value histograms
+EXAMPLES = 5
+
+
+@dataclass
+class Field:
+    """One thing to profile: ``expr`` is SQL over the source, ``kind`` numeric|levels."""
+
+    key: str
+    expr: str
+    kind: str = "numeric"
+    histogram: bool = False
+
+
+@dataclass
+class Rule:
+    """Rows where ``condition`` (SQL over the field aliases) holds are counted as bad."""
+
+    key: str
+    field: str
+    condition: str
+    message: str
+
+
+@dataclass
+class FieldProfile:
+    key: str
+    kind: str
+    nulls: int = 0
+    nonfinite: int = 0
+    min: float | None = None
+    max: float | None = None
+    mean: float | None = None
+    sd: float | None = None
+    values: np.ndarray | None = None  # distinct rounded values (sorted) or level labels
+    counts: np.ndarray | None = None
+
+    @property
+    def distinct(self) -> int:
+        return 0 if self.values is None else len(self.values)
+
+    def to_dict(self) -> dict:
+        out = {"kind": self.kind, "nulls": self.nulls, "nonfinite": self.nonfinite}
+        if self.kind == "numeric":
+            out.update(min=self.min, max=self.max, mean=self.mean, sd=self.sd)
+            if self.values is not None:
+                out["distinct_rounded"] = self.distinct
+        else:
+            out["levels"] = {str(v): int(c) for v, c in zip(self.values, self.counts)}
+        return out
+
+
+@dataclass
+class DataProfile:
+    rows: int
+    fields: dict[str, FieldProfile] = field(default_factory=dict)
+    violations: dict[str, tuple[int, list, str]] = field(default_factory=dict)
+
+    def __getitem__(self, key: str) -> FieldProfile:
+        return self.fields[key]
+
+    def to_dict(self) -> dict:
+        return {"rows": self.rows, "columns": {k: f.to_dict() for k, f in self.fields.items()}}
+
+
+def _alias(i: int) -> str:
+    return f"f{i}"
+
+
+def _rounded(v: str) -> str:
+    return (f"CASE WHEN {v} = 0 OR NOT isfinite({v}) THEN {v} ELSE "
+            f"round({v}, ({ROUND_DIGITS - 1} - floor(log10(abs({v}))))::INTEGER) END")
+
+
+def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: str | None
+                ) -> DataProfile:
+    """Profile ``fields`` over ``source`` filtered by ``where``, in one aggregate query."""
+    alias = {f.key: _alias(i) for i, f in enumerate(fields)}
+    inner = []
+    for f in fields:
+        cast = "DOUBLE" if f.kind == "numeric" else "VARCHAR"
+        inner.append(f"CAST({f.expr} AS {cast}) AS {alias[f.key]}")
+    aggs = ["count(*)"]
+    layout: list[tuple[str, str]] = []
+    for f in fields:
+        a = alias[f.key]
+        aggs.append(f"count(*) FILTER (WHERE {a} IS NULL)")
+        layout.append((f.key, "nulls"))
+        if f.kind == "numeric":
+            aggs += [f"count(*) FILTER (WHERE NOT isfinite({a}))",
+                     f"min({a}) FILTER (WHERE isfinite({a}))",
+                     f"max({a}) FILTER (WHERE isfinite({a}))",
+                     f"avg({a}) FILTER (WHERE isfinite({a}))",
+                     f"stddev_pop({a}) FILTER (WHERE isfinite({a}))"]
+            layout += [(f.key, k) for k in ("nonfinite", "min", "max", "mean", "sd")]
+            if f.histogram:
+                aggs.append(f"histogram({_rounded(a)}) FILTER (WHERE isfinite({a}))")
+                layout.append((f.key, "hist"))
+        else:
+            aggs.append(f"histogram({a})")
+            layout.append((f.key, "hist"))
+    for r in rules:
+        cond = r.condition.format(**{k: alias[k] for k in alias})
+        a = alias[r.field]
+        aggs += [f"count(*) FILTER (WHERE {cond})", f"min({a}, {EXAMPLES}) FILTER (WHERE {cond})"]
+        layout += [(r.key, "rule_n"), (r.key, "rule_ex")]
+    where_sql = f" WHERE {where}" if where else ""
+    text = (f"WITH s AS (SELECT {', '.join(inner)} FROM tallgam_source{where_sql}) "
+            f"SELECT {', '.join(aggs)} FROM s")
+    row = source.fetchall(text)[0]
+    prof = DataProfile(rows=int(row[0]))
+    for f in fields:
+        prof.fields[f.key] = FieldProfile(key=f.key, kind=f.kind)
+    rule_msgs = {r.key: r.message for r in rules}
+    pending: dict[str, dict] = {}
+    for (key, what), value in zip(layout, row[1:]):
+        if what == "rule_n":
+            pending[key] = {"n": int(value or 0)}
+        elif what == "rule_ex":
+            pending[key]["ex"] = list(value or [])
+        elif what == "hist":
+            _set_histogram(prof.fields[key], value or {})
+        elif what in ("nulls", "nonfinite"):
+            setattr(prof.fields[key], what, int(value or 0))
+        else:
+            setattr(prof.fields[key], what, None if value is None else float(value))
+    for key, info in pending.items():
+        if info["n"]:
+            prof.violations[key] = (info["n"], info["ex"], rule_msgs[key])
+    return prof
+
+
+def _set_histogram(fp: FieldProfile, hist: dict) -> None:
+    keys = list(hist.keys())
+    counts = np.array([hist[k] for k in keys], dtype=np.float64)
+    if fp.kind == "numeric":
+        values = np.array(keys, dtype=np.float64)
+        order = np.argsort(values)
+    else:
+        values = np.array([str(k) for k in keys], dtype=object)
+        order = level_order(values)
+    fp.values = values[order]
+    fp.counts = counts[order]
+
+
+def level_order(labels: np.ndarray) -> np.ndarray:
+    """Sort order of level labels: numerically when every label is a number, else as text."""
+    try:
+        nums = np.array([float(v) for v in labels])
+        return np.lexsort((labels.astype(str), nums))
+    except ValueError:
+        return np.argsort(labels.astype(str), kind="stable")

@@ -1,0 +1,295 @@
+"""The fitted model: estimates, uncertainty, fit statistics, prediction and effects.
+
+A :class:`FitResult` holds only p-sized and p × p quantities plus the data profile, so it
+is small whatever the number of rows, and it round-trips exactly through the JSON model
+file (:mod:`tallgam.modelfile`). Coefficients and covariance are kept in *raw*
+coordinates (one per basis column, base levels at zero) so prediction is a plain sparse
+product with the same kernels as fitting.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+from scipy import stats
+
+from . import basis as bs
+from .design import Design
+from .errors import SpecError
+from .model import Model
+from .sources import open_source
+from .terms import Basis, CategoricalBasis, LinearBasis, SplineBasis
+
+
+class FitResult:
+    """A fitted additive model. Made by :meth:`tallgam.Model.fit` or :func:`tallgam.load`.
+
+    Attributes
+    ----------
+    edf : dict, effective degrees of freedom per term label, and ``"total"``.
+    smoothing : dict, the smoothing parameter λ of every penalized term (a list when a term
+        has several penalties), on the scale of its penalty (∫f''² for curvature).
+    scale : the dispersion φ (1 for poisson/binomial/negative binomial).
+    deviance, null_deviance, deviance_explained, r2_adjusted, loglik, aic : fit statistics.
+    criterion : (name, value) of the smoothing criterion at the optimum.
+    converged, passes, history : how the iterations went (data passes exclude the profile).
+    """
+
+    def __init__(self, model: Model, bases: list[Basis], beta: np.ndarray,
+                 covariance: np.ndarray, edf: dict, smoothing: dict, statistics: dict,
+                 profile: dict, history: list[dict], notes: list[str], provenance: dict):
+        self.model = model
+        self.bases = bases
+        self.design = Design(bases)
+        self.coefficients_raw = np.asarray(beta, dtype=np.float64)
+        self.covariance_raw = np.asarray(covariance, dtype=np.float64)
+        self.edf = edf
+        self.smoothing = smoothing
+        self.statistics = statistics
+        self.profile = profile
+        self.history = history
+        self.notes = notes
+        self.provenance = provenance
+
+    # ------------------------------------------------------------------ construction
+    @classmethod
+    def from_state(cls, fs) -> FitResult:
+        from . import __version__
+
+        sol, cons, design = fs.solution, fs.constraints, fs.design
+        cov_free = sol.H_inv * fs.scale
+        cov_raw = cons.raw_covariance(cov_free)
+        edf = {}
+        for b, fsl in zip(design.bases, cons.free_slices):
+            edf[b.label] = float(np.sum(sol.edf[fsl]))
+        edf["total"] = float(np.sum(sol.edf))
+        smoothing: dict = {}
+        for k, owner in enumerate(cons.penalty_owner):
+            label = design.bases[owner].label
+            smoothing.setdefault(label, []).append(float(sol.lam[k]))
+        smoothing = {k: (v[0] if len(v) == 1 else v) for k, v in smoothing.items()}
+        sc = fs.state.scalars
+        n = sc["rows"]
+        weight = sc["weight"]
+        tss = sc["centred_ss"] - sc["centred_sum"] ** 2 / max(weight, 1e-300)
+        dev, null = sc["deviance"], fs.null_deviance
+        p_scale = 0 if fs.model.family.scale_known else 1
+        statistics = {
+            "rows": int(n),
+            "weight": weight,
+            "deviance": dev,
+            "null_deviance": null,
+            "deviance_explained": 1.0 - dev / null if null > 0 else float("nan"),
+            "r2_adjusted": (1.0 - (sc["response_ss"] / max(n - edf["total"], 1.0))
+                            / (tss / max(n - 1.0, 1.0))) if tss > 0 else float("nan"),
+            "scale": fs.scale,
+            "loglik": fs.loglik,
+            "aic": -2.0 * fs.loglik + 2.0 * (edf["total"] + p_scale),
+            "criterion": sol.criterion_name if fs.model.criterion != "fixed" else "fixed",
+            "criterion_value": sol.criterion if np.isfinite(sol.criterion) else None,
+            "converged": bool(fs.converged),
+            "passes": int(fs.passes),
+            "dropped_rows": int(fs.dropped_rows),
+            "seconds": fs.seconds,
+        }
+        history = [vars(h) for h in fs.history]
+        provenance = {"tallgam_version": __version__,
+                      "fitted_at": __import__("datetime").datetime.now(
+                          __import__("datetime").timezone.utc).isoformat(timespec="seconds")}
+        return cls(fs.model, design.bases, fs.beta, cov_raw, edf, smoothing, statistics,
+                   fs.profile.to_dict(), history, list(fs.notes), provenance)
+
+    # ------------------------------------------------------------------ statistics
+    @property
+    def scale(self) -> float:
+        return self.statistics["scale"]
+
+    @property
+    def deviance(self) -> float:
+        return self.statistics["deviance"]
+
+    @property
+    def null_deviance(self) -> float:
+        return self.statistics["null_deviance"]
+
+    @property
+    def deviance_explained(self) -> float:
+        return self.statistics["deviance_explained"]
+
+    @property
+    def r2_adjusted(self) -> float:
+        return self.statistics["r2_adjusted"]
+
+    @property
+    def loglik(self) -> float:
+        return self.statistics["loglik"]
+
+    @property
+    def aic(self) -> float:
+        return self.statistics["aic"]
+
+    @property
+    def criterion(self) -> tuple[str, float | None]:
+        return self.statistics["criterion"], self.statistics["criterion_value"]
+
+    @property
+    def converged(self) -> bool:
+        return self.statistics["converged"]
+
+    @property
+    def passes(self) -> int:
+        return self.statistics["passes"]
+
+    @property
+    def rows(self) -> int:
+        return self.statistics["rows"]
+
+    # ------------------------------------------------------------------ coefficients
+    def term(self, name: str) -> tuple[Basis, slice]:
+        """The basis and raw coefficient range of a term, by label or column name."""
+        labels = [b.label for b in self.bases]
+        if name in labels:
+            i = labels.index(name)
+        else:
+            hits = [i for i, b in enumerate(self.bases) if name in b.inputs]
+            if len(hits) != 1:
+                from .errors import nearest
+
+                raise SpecError(f"no single term {name!r}{nearest(name, labels)}; terms are "
+                                f"{', '.join(labels)}")
+            i = hits[0]
+        return self.bases[i], self.design.slices[i]
+
+    @property
+    def coefficients(self) -> pa.Table:
+        """One row per raw coefficient: term, name, estimate, std_error (link scale).
+
+        Linear terms are reported per unit of their column; base levels are 0 with se 0.
+        """
+        terms, names, est, se = [], [], [], []
+        sd = np.sqrt(np.maximum(np.diag(self.covariance_raw), 0.0))
+        for b, sl in zip(self.bases, self.design.slices):
+            e, s = self.coefficients_raw[sl], sd[sl]
+            if isinstance(b, LinearBasis):
+                e, s = e / b.scale, s / b.scale
+                labels = [b.spec.column]
+            elif isinstance(b, CategoricalBasis):
+                labels = list(b.levels)
+            elif isinstance(b, SplineBasis):
+                labels = [f"basis {i + 1}" for i in range(b.n_raw)]
+            else:
+                labels = ["(intercept)"]
+            terms += [b.label] * len(labels)
+            names += labels
+            est += list(e)
+            se += list(s)
+        return pa.table({"term": terms, "name": names, "estimate": np.array(est),
+                         "std_error": np.array(se)})
+
+    @property
+    def intercept(self) -> float:
+        """The intercept on the link scale (linear terms measured from their mean)."""
+        b = self.coefficients_raw[self.design.slices[0]][0]
+        for basis, sl in zip(self.bases, self.design.slices):
+            if isinstance(basis, LinearBasis):
+                b -= self.coefficients_raw[sl][0] * basis.centre / basis.scale
+        return float(b)
+
+    # ------------------------------------------------------------------ prediction
+    def predict(self, data, output: str = "response", *, se: bool = False,
+                with_offset: bool = True, unseen: str = "error", batch_rows: int = 1_000_000):
+        """Predictions for every row of ``data`` (any source), in row order.
+
+        ``output``: ``"response"`` (μ, including exposure/offset unless
+        ``with_offset=False``), ``"link"`` (η) or ``"terms"`` (a dict of each term's
+        contribution on the link scale). With ``se=True`` returns ``(values, std_errors)``
+        (delta method on the response scale). Spline columns outside the training range
+        are held at the boundary, with a warning that gives the counts.
+        """
+        from .scoring import OUTPUTS, Scorer
+
+        if output not in OUTPUTS:
+            raise SpecError(f"output must be one of {', '.join(OUTPUTS)}, got {output!r}")
+        source = open_source(data)
+        owned = source is not data
+        try:
+            scorer = Scorer(self, source, with_offset=with_offset, unseen=unseen)
+            parts = list(scorer.batches(batch_rows, se=se, terms=output == "terms"))
+        finally:
+            if owned:
+                source.close()
+        scorer.report.warn()
+        if output == "terms":
+            labels = [b.label for b in self.bases]
+            return {lab: _cat([p[1][lab] for p in parts]) for lab in labels}
+        values = _cat([p[1][output] for p in parts])
+        if se:
+            return values, _cat([p[1][f"{output}_se"] for p in parts])
+        return values
+
+    def score(self, data, output_path, **kwargs):
+        """Stream predictions of ``data`` to a Parquet file (see :mod:`tallgam.scoring`)."""
+        from .scoring import score_to_parquet
+
+        return score_to_parquet(self, data, output_path, **kwargs)
+
+    # ------------------------------------------------------------------ effects
+    def effect(self, term: str, *, points: int = 200, level: float = 0.95) -> pa.Table:
+        """A term's estimated effect with pointwise Bayesian bands.
+
+        Splines and linear terms: ``points`` values of the column across the training
+        range; categoricals: every level. Columns: the term's column, ``estimate``,
+        ``std_error``, ``lower``, ``upper`` on the link scale, and for the log link
+        ``relativity`` = exp(estimate) with its bounds.
+        """
+        b, sl = self.term(term)
+        beta = self.coefficients_raw[sl]
+        cov = self.covariance_raw[sl, sl]
+        if isinstance(b, SplineBasis):
+            lo, hi = b.range
+            x = np.linspace(lo, hi, points)
+            X = bs.dense_matrix(b.knots, x)
+            key = b.spec.column
+        elif isinstance(b, LinearBasis):
+            fp = self.profile["columns"].get(f"num:{b.spec.column}", {})
+            x = np.linspace(fp.get("min", b.centre - 2 * b.scale),
+                            fp.get("max", b.centre + 2 * b.scale), points)
+            X = ((x - b.centre) / b.scale)[:, None]
+            key = b.spec.column
+        elif isinstance(b, CategoricalBasis):
+            x = np.array(b.levels, dtype=object)
+            X = np.eye(b.n_raw)
+            key = b.spec.column
+        else:
+            raise SpecError(f"term {term!r} has no effect curve")
+        est = X @ beta
+        se = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", X, cov, X), 0.0))
+        z = stats.norm.ppf(0.5 + level / 2.0)
+        cols = {key: x.tolist() if x.dtype == object else x, "estimate": est, "std_error": se,
+                "lower": est - z * se, "upper": est + z * se}
+        if self.model.link.name == "log":
+            cols.update(relativity=np.exp(est), relativity_lower=np.exp(est - z * se),
+                        relativity_upper=np.exp(est + z * se))
+        return pa.table(cols)
+
+    # ------------------------------------------------------------------ output
+    def summary(self) -> str:
+        from .report import summary_text
+
+        return summary_text(self)
+
+    def __repr__(self) -> str:
+        s = self.statistics
+        return (f"<tallgam FitResult: {self.model.family.name}/{self.model.link.name}, "
+                f"{len(self.bases) - 1} terms, {s['rows']} rows, EDF {self.edf['total']:.2f}, "
+                f"deviance explained {100 * s['deviance_explained']:.1f}%>")
+
+    def save(self, path) -> None:
+        """Write the model file (JSON) atomically: a temporary name, then a rename."""
+        from .modelfile import save
+
+        save(self, path)
+
+
+def _cat(parts: list[np.ndarray]) -> np.ndarray:
+    return np.concatenate(parts) if parts else np.empty(0)

@@ -1,0 +1,156 @@
+"""Scoring: the fitted model applied to any source, streamed batch by batch.
+
+The same encoding and kernels as fitting compute η = offset + Xβ (and xᵀVx for standard
+errors), so predictions and fits can never disagree about a basis. Values outside a
+spline's training range are clamped to the boundary (reported with counts); unseen levels
+are an error unless ``unseen="base"`` asks for the base level's effect (zero).
+"""
+
+from __future__ import annotations
+
+import warnings
+from collections import Counter
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from . import kernels
+from .design import Design, batch_columns
+from .errors import DataError, SpecError, TallgamWarning
+from .fitting import O, model_inputs
+from .sources import Source, quote
+from .terms import CategoricalBasis, SplineBasis
+
+OUTPUTS = ("response", "link", "terms")
+UNSEEN = ("error", "base")
+
+
+@dataclass
+class ScoreReport:
+    """What scoring had to adjust, with counts."""
+
+    rows: int = 0
+    clamped: Counter = field(default_factory=Counter)   # column -> rows outside the range
+    unseen: Counter = field(default_factory=Counter)    # column -> rows with unseen levels
+
+    def warn(self) -> None:
+        for col, n in self.clamped.items():
+            warnings.warn(TallgamWarning(
+                f"{n} of {self.rows} row(s) have {col!r} outside the training range; the "
+                "spline was held at its boundary value for them"), stacklevel=4)
+        for col, n in self.unseen.items():
+            warnings.warn(TallgamWarning(
+                f"{n} of {self.rows} row(s) have a level of {col!r} not seen in training; "
+                "they were given the base level's effect (unseen='base')"), stacklevel=4)
+
+
+class Scorer:
+    """Streams predictions of a fitted model over a source."""
+
+    def __init__(self, fit, source: Source, *, with_offset: bool = True, unseen: str = "error",
+                 keep: tuple[str, ...] = ()):
+        if unseen not in UNSEEN:
+            raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {unseen!r}")
+        self.fit = fit
+        self.source = source
+        self.design: Design = fit.design
+        self.unseen = unseen
+        self.inputs = model_inputs(fit.model, source, fit.model.terms, for_prediction=True,
+                                   with_offset=with_offset)
+        source.require_columns(list(keep))
+        self.keep = list(keep)
+        self.select = self.inputs.select + [f"{quote(k)} AS {quote('__keep_' + k)}"
+                                            for k in self.keep]
+        self.report = ScoreReport()
+        beta = fit.coefficients_raw
+        self.beta_d = np.ascontiguousarray(beta[:self.design.pd])
+        self.beta_l = np.ascontiguousarray(beta[self.design.pd:])
+
+    def batches(self, batch_rows: int, *, se: bool = False, terms: bool = False
+                ) -> Iterator[tuple[pa.RecordBatch, dict[str, np.ndarray]]]:
+        """Yield (batch of kept columns, dict of arrays): ``link``, ``response`` and with
+        ``se`` their standard errors ``link_se``/``response_se``; with ``terms`` one array
+        per term label (the centred contribution on the link scale)."""
+        link = self.fit.model.link
+        cov = self.fit.covariance_raw if se else None
+        for batch in self.source.batches(self.select, None,
+                                         batch_rows):
+            cols = batch_columns(batch.select(range(len(self.inputs.select))),
+                                 self.inputs.level_names)
+            self._check(cols, batch.num_rows)
+            n = batch.num_rows
+            eta = cols[O].copy() if self.inputs.has_offset else np.zeros(n)
+            out: dict[str, np.ndarray] = {}
+            var = np.zeros(n) if se else None
+            parts = {b.label: np.zeros(n) for b in self.design.bases} if terms else None
+            for sl, enc in self.design.blocks(cols):
+                seg = np.zeros(sl.stop - sl.start)
+                kernels.linear_predictor(enc.idx, enc.val, enc.lev, self.beta_d, self.beta_l,
+                                         seg)
+                eta[sl] += seg
+                if se:
+                    v = np.empty(len(seg))
+                    kernels.quadratic_form_rows(enc.idx, enc.val, enc.lev, self.design.pd, cov,
+                                                v)
+                    var[sl] = v
+                if terms:
+                    self._term_parts(enc, sl, parts)
+            out["link"] = eta
+            mu = link.inverse(eta)
+            out["response"] = mu
+            if se:
+                se_eta = np.sqrt(np.maximum(var, 0.0))
+                out["link_se"] = se_eta
+                out["response_se"] = np.abs(link.mu_eta(eta)) * se_eta
+            if terms:
+                out.update(parts)
+            self.report.rows += n
+            kept = batch.select(range(len(self.inputs.select), batch.num_columns))
+            kept = kept.rename_columns(self.keep) if self.keep else kept
+            yield kept, out
+
+    def _term_parts(self, enc, sl, parts) -> None:
+        d = self.design
+        for b, rng in zip(d.bases, d.slices):
+            beta = np.zeros(d.p)
+            beta[rng] = self.fit.coefficients_raw[rng]
+            seg = np.zeros(sl.stop - sl.start)
+            kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta[:d.pd], beta[d.pd:], seg)
+            parts[b.label][sl] = seg
+
+    def _check(self, cols: dict, n: int) -> None:
+        for b in self.design.bases:
+            if isinstance(b, SplineBasis):
+                x = cols[b.spec.column]
+                lo, hi = b.range
+                bad = np.count_nonzero(~np.isfinite(x))
+                if bad:
+                    raise DataError(f"column {b.spec.column!r} has {bad} NULL/NaN/inf value(s) "
+                                    "in the data to score; fill or filter them first")
+                outside = np.count_nonzero((x < lo) | (x > hi))
+                if outside:
+                    self.report.clamped[b.spec.column] += outside
+            elif isinstance(b, CategoricalBasis):
+                arr = cols[b.spec.column]
+                codes = b.codes(cols)
+                missing = codes < 0
+                if missing.any():
+                    if self.unseen == "error":
+                        ex = pc.unique(arr.filter(pa.array(missing))).to_pylist()[:5]
+                        raise DataError(
+                            f"{int(missing.sum())} row(s) in a batch of {n} have levels of "
+                            f"{b.spec.column!r} not seen in training (e.g. {ex}); pass "
+                            "unseen='base' to give them the base level's effect")
+                    self.report.unseen[b.spec.column] += int(missing.sum())
+            else:
+                for c in b.inputs:
+                    x = cols[c]
+                    if isinstance(x, np.ndarray) and not np.all(np.isfinite(x)):
+                        raise DataError(f"column {c!r} has NULL/NaN/inf values in the data "
+                                        "to score; fill or filter them first")
+        if O in cols and not np.all(np.isfinite(cols[O])):
+            raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
+                            "rows of the data to score")

@@ -1,0 +1,146 @@
+"""The partial state of a data pass: additive sufficient statistics of the working model.
+
+Everything the dense stage needs from the rows is a sum over rows, so partial states from
+threads, batches, files or cluster workers combine with :meth:`PassState.merge` (a plain
+sum). Matrices are kept in blocks so that level terms with many levels never need a dense
+p × p array: the level block of XᵀWX is diagonal for one level term (a row hits one level).
+
+All quantities are taken at the *anchor* β (the coefficients the pass was run with), in
+residual form: with rᵢ = zᵢ − (ηᵢ − oᵢ) = (yᵢ − μᵢ) g'(μᵢ),
+
+    A = XᵀWX,   u = XᵀW r,   e = rᵀW r,
+
+so the working-model fit at any β is e − 2(β−β_a)ᵀu + (β−β_a)ᵀA(β−β_a), which avoids the
+cancellation of forming zᵀWz for responses with a large mean.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields
+
+import numpy as np
+
+from . import kernels
+
+SCALARS = (
+    "rows",           # number of rows
+    "weight",         # Σ prior weights
+    "resid_ss",       # e = Σ W r²  (working model, at the anchor)
+    "deviance",       # Σ w d(y, μ) at the anchor
+    "pearson",        # Σ w (y − μ)² / V(μ) at the anchor
+    "response_ss",    # Σ w (y − μ)² on the response scale
+    "centred_ss",     # Σ w (y − c)², c the profile mean of the response
+    "centred_sum",    # Σ w (y − c), to correct the above to the weighted mean
+    "log_weight",     # Σ log w (gaussian log-likelihood)
+    "loglik",         # Σ log f(yᵢ; μᵢ, φ/wᵢ) at the anchor, φ from the previous pass
+    "null_deviance",  # Σ w d(y, μ₀) of the intercept-and-offset model at its anchor
+    "null_weight",    # Σ W₀ of the null model's working weights
+    "null_score",     # Σ W₀ r₀ of the null model's working residuals
+)
+
+
+@dataclass
+class PassState:
+    """Sums over rows for one working model. Shapes: pd dense columns, L level columns."""
+
+    dense: np.ndarray          # (pd, pd) XᵀWX of the dense group, symmetric
+    cross: np.ndarray          # (L, pd) level × dense
+    diag: np.ndarray           # (L,) level block diagonal
+    pairs: dict = field(default_factory=dict)  # (k, l) -> (L_k, L_l) between level terms
+    rhs: np.ndarray = None     # (pd + L,) XᵀW r
+    colsum: np.ndarray = None  # (pd + L,) Σ wc x (constraint weights: exposure or weight)
+    scalars: dict = field(default_factory=dict)
+
+    @classmethod
+    def zeros(cls, pd: int, level_sizes: list[int]) -> PassState:
+        L = sum(level_sizes)
+        pairs = {}
+        for a in range(len(level_sizes)):
+            for b in range(a + 1, len(level_sizes)):
+                pairs[(a, b)] = np.zeros((level_sizes[a], level_sizes[b]))
+        return cls(dense=np.zeros((pd, pd)), cross=np.zeros((L, pd)), diag=np.zeros(L),
+                   pairs=pairs, rhs=np.zeros(pd + L), colsum=np.zeros(pd + L),
+                   scalars=dict.fromkeys(SCALARS, 0.0))
+
+    def merge(self, other: PassState) -> PassState:
+        """The sum of two partial states (a new object; neither input changes)."""
+        out = {}
+        for f in fields(self):
+            a, b = getattr(self, f.name), getattr(other, f.name)
+            if isinstance(a, dict):
+                out[f.name] = {k: a[k] + b[k] for k in a}
+            else:
+                out[f.name] = a + b
+        return PassState(**out)
+
+    @property
+    def pd(self) -> int:
+        return self.dense.shape[0]
+
+    def gram(self, level_offsets: list[int], level_sizes: list[int]) -> np.ndarray:
+        """The full (p × p) XᵀWX assembled from the blocks (for moderate p)."""
+        pd, L = self.pd, len(self.diag)
+        out = np.zeros((pd + L, pd + L))
+        out[:pd, :pd] = self.dense
+        out[pd:, :pd] = self.cross
+        out[:pd, pd:] = self.cross.T
+        out[pd + np.arange(L), pd + np.arange(L)] = self.diag
+        for (a, b), block in self.pairs.items():
+            ra = slice(pd + level_offsets[a], pd + level_offsets[a] + level_sizes[a])
+            rb = slice(pd + level_offsets[b], pd + level_offsets[b] + level_sizes[b])
+            out[ra, rb] = block
+            out[rb, ra] = block.T
+        return out
+
+    def to_dict(self) -> dict:
+        """Plain arrays and numbers (for shipping between processes)."""
+        d = {f.name: getattr(self, f.name) for f in fields(self)}
+        d["pairs"] = {f"{a},{b}": v for (a, b), v in self.pairs.items()}
+        return d
+
+
+class Accumulator:
+    """Per-thread accumulators for one pass; :meth:`finish` reduces them in thread order."""
+
+    def __init__(self, pd: int, level_sizes: list[int], threads: int):
+        L = sum(level_sizes)
+        self.level_sizes = level_sizes
+        self.threads = threads
+        self.dense = np.zeros((threads, pd, pd))
+        self.cross = np.zeros((threads, L, pd))
+        self.diag = np.zeros((threads, L))
+        self.rhs_d = np.zeros((threads, pd))
+        self.rhs_l = np.zeros((threads, L))
+        self.col_d = np.zeros((threads, pd))
+        self.col_l = np.zeros((threads, L))
+        self.pairs = PassState.zeros(0, level_sizes).pairs
+        self.scalars = dict.fromkeys(SCALARS, 0.0)
+
+    def add(self, enc, w: np.ndarray, r: np.ndarray, wc: np.ndarray) -> None:
+        """Add a block of encoded rows with working weights w, residuals r, constraint
+        weights wc (all shape (n,))."""
+        kernels.accumulate(enc.idx, enc.val, enc.lev, w, r, wc, self.dense, self.cross,
+                           self.diag, self.rhs_d, self.rhs_l, self.col_d, self.col_l)
+        for (a, b), out in self.pairs.items():
+            kernels.accumulate_level_pair(enc.lev[:, a], enc.lev[:, b], w, out)
+
+    def add_scalars(self, **values: float) -> None:
+        for k, v in values.items():
+            self.scalars[k] += float(v)
+
+    def finish(self) -> PassState:
+        dense = _ordered_sum(self.dense)
+        dense = dense + np.triu(dense, 1).T
+        return PassState(
+            dense=dense, cross=_ordered_sum(self.cross), diag=_ordered_sum(self.diag),
+            pairs=self.pairs,
+            rhs=np.concatenate([_ordered_sum(self.rhs_d), _ordered_sum(self.rhs_l)]),
+            colsum=np.concatenate([_ordered_sum(self.col_d), _ordered_sum(self.col_l)]),
+            scalars=dict(self.scalars))
+
+
+def _ordered_sum(per_thread: np.ndarray) -> np.ndarray:
+    out = per_thread[0].copy()
+    for t in range(1, per_thread.shape[0]):
+        out += per_thread[t]
+    return out
