@@ -143,6 +143,12 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
         profile_fields=fields_, rules=rules, exprs=exprs)
 
 
+def resolved_expressions(inputs: Inputs) -> dict[str, str]:
+    """The SQL the fit used for response, weights, exposure and offset (for export)."""
+    names = {Y: "response", W: "weights", "__exposure": "exposure", "__offset": "offset"}
+    return {names[k]: v for k, v in inputs.exprs.items() if k in names}
+
+
 def complete_rows_condition(fields_: list[Field]) -> str:
     conds = []
     for f in fields_:
@@ -212,6 +218,7 @@ class FitState:
     notes: list[str]
     dropped_rows: int
     seconds: float
+    expressions: dict = field(default_factory=dict)
 
 
 def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
@@ -372,7 +379,8 @@ def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
     return FitState(model=model, design=design, constraints=constraints, profile=profile,
                     beta=beta, solution=solution, state=state, scale=scale, converged=converged,
                     passes=passes, history=history, null_deviance=null_dev, loglik=loglik,
-                    notes=notes, dropped_rows=dropped, seconds=0.0)
+                    notes=notes, dropped_rows=dropped, seconds=0.0,
+                    expressions=resolved_expressions(inputs))
 
 
 def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:

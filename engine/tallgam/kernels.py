@@ -68,13 +68,16 @@ def accumulate(idx, val, lev, w, r, wp, dense, cross, diag, rhs_d, rhs_l, col_d,
 
 
 @numba.njit(cache=True)
-def accumulate_level_pair(lev_a, lev_b, w, out):
-    """Cross products of two level terms: out[a, b] += w for each row (serial, cheap)."""
+def accumulate_level_pair(lev_a, lev_b, off_a, off_b, w, out):
+    """Cross products of two level terms: out[a, b] += w for each row (serial, cheap).
+
+    ``lev_a``/``lev_b`` hold global level indices; ``off_a``/``off_b`` are the first global
+    index of each term, so out is indexed by the terms' own level numbers."""
     for i in range(lev_a.shape[0]):
         la = lev_a[i]
         lb = lev_b[i]
         if la >= 0 and lb >= 0:
-            out[la, lb] += w[i]
+            out[la - off_a, lb - off_b] += w[i]
 
 
 @numba.njit(cache=True, parallel=True)

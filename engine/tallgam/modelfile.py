@@ -47,6 +47,7 @@ def to_dict(fit) -> dict:
         "history": fit.history,
         "notes": fit.notes,
         "provenance": fit.provenance,
+        "expressions": fit.expressions,
     }
 
 
@@ -126,4 +127,5 @@ def from_dict(data: dict, where: str = "the model file"):
         raise ModelFileError(f"{where} is inconsistent: the terms do not match the model")
     return FitResult(model, bases, beta, cov, data["edf"], data["smoothing"],
                      data["statistics"], data["profile"], data.get("history", []),
-                     data.get("notes", []), data.get("provenance", {}))
+                     data.get("notes", []), data.get("provenance", {}),
+                     data.get("expressions", {}))

@@ -37,7 +37,8 @@ class FitResult:
 
     def __init__(self, model: Model, bases: list[Basis], beta: np.ndarray,
                  covariance: np.ndarray, edf: dict, smoothing: dict, statistics: dict,
-                 profile: dict, history: list[dict], notes: list[str], provenance: dict):
+                 profile: dict, history: list[dict], notes: list[str], provenance: dict,
+                 expressions: dict | None = None):
         self.model = model
         self.bases = bases
         self.design = Design(bases)
@@ -50,6 +51,7 @@ class FitResult:
         self.history = history
         self.notes = notes
         self.provenance = provenance
+        self.expressions = dict(expressions or {})  # role -> SQL used at fit time
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -97,7 +99,7 @@ class FitResult:
                       "fitted_at": __import__("datetime").datetime.now(
                           __import__("datetime").timezone.utc).isoformat(timespec="seconds")}
         return cls(fs.model, design.bases, fs.beta, cov_raw, edf, smoothing, statistics,
-                   fs.profile.to_dict(), history, list(fs.notes), provenance)
+                   fs.profile.to_dict(), history, list(fs.notes), provenance, fs.expressions)
 
     # ------------------------------------------------------------------ statistics
     @property
@@ -283,6 +285,12 @@ class FitResult:
         return (f"<tallgam FitResult: {self.model.family.name}/{self.model.link.name}, "
                 f"{len(self.bases) - 1} terms, {s['rows']} rows, EDF {self.edf['total']:.2f}, "
                 f"deviance explained {100 * s['deviance_explained']:.1f}%>")
+
+    def to_sql(self, output: str = "response", *, with_offset: bool = True) -> str:
+        """One DuckDB SQL expression reproducing ``predict`` (see :mod:`tallgam.sqlexport`)."""
+        from .sqlexport import to_sql
+
+        return to_sql(self, output=output, with_offset=with_offset)
 
     def save(self, path) -> None:
         """Write the model file (JSON) atomically: a temporary name, then a rename."""

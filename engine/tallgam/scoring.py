@@ -154,3 +154,70 @@ class Scorer:
         if O in cols and not np.all(np.isfinite(cols[O])):
             raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
                             "rows of the data to score")
+
+
+def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str] = (),
+                     terms: bool = False, se: bool = False, with_offset: bool = True,
+                     unseen: str = "error", batch_rows: int = 1_000_000,
+                     progress=False) -> ScoreReport:
+    """Stream predictions of every row of ``data`` into a Parquet file.
+
+    Columns: the ``keep`` columns, ``prediction`` (response scale), ``link``; with ``se``
+    ``prediction_se`` and ``link_se``; with ``terms`` one ``term:<label>`` column per
+    term. The file appears only when complete: rows go to a temporary file in the same
+    folder, renamed at the end; an error or a kill leaves no output behind.
+    """
+    import os
+    import tempfile
+
+    import pyarrow.parquet as pq
+
+    from .progress import Event, make_callback
+    from .sources import open_source
+
+    callback = make_callback(progress)
+    out = os.fspath(output_path)
+    folder = os.path.dirname(os.path.abspath(out))
+    if not os.path.isdir(folder):
+        raise DataError(f"the output folder {folder!r} does not exist")
+    source = open_source(data)
+    owned = source is not data
+    fd, tmp = tempfile.mkstemp(prefix=".tallgam-score-", suffix=".parquet.tmp", dir=folder)
+    os.close(fd)
+    writer = None
+    try:
+        scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
+        callback(Event("start", "scoring"))
+        done = 0
+        for kept, arrays in scorer.batches(batch_rows, se=se, terms=terms):
+            cols = {name: kept.column(i) for i, name in enumerate(kept.schema.names)}
+            cols["prediction"] = pa.array(arrays["response"])
+            cols["link"] = pa.array(arrays["link"])
+            if se:
+                cols["prediction_se"] = pa.array(arrays["response_se"])
+                cols["link_se"] = pa.array(arrays["link_se"])
+            if terms:
+                for b in fit.bases:
+                    cols[f"term:{b.label}"] = pa.array(arrays[b.label])
+            table = pa.table(cols)
+            if writer is None:
+                writer = pq.ParquetWriter(tmp, table.schema)
+            writer.write_table(table)
+            done += table.num_rows
+            callback(Event("advance", "scoring", rows=done))
+        if writer is None:  # no rows: still write a valid, empty file with the right columns
+            names = list(keep) + ["prediction", "link"]
+            writer = pq.ParquetWriter(tmp, pa.schema([(n, pa.float64()) for n in names]))
+        writer.close()
+        writer = None
+        os.replace(tmp, out)
+        callback(Event("end", "scoring", rows=done))
+    finally:
+        if writer is not None:
+            writer.close()
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        if owned:
+            source.close()
+    scorer.report.warn()
+    return scorer.report

@@ -105,6 +105,7 @@ class Accumulator:
     def __init__(self, pd: int, level_sizes: list[int], threads: int):
         L = sum(level_sizes)
         self.level_sizes = level_sizes
+        self.level_offsets = np.concatenate([[0], np.cumsum(level_sizes)[:-1]]).astype(np.int32)
         self.threads = threads
         self.dense = np.zeros((threads, pd, pd))
         self.cross = np.zeros((threads, L, pd))
@@ -122,7 +123,8 @@ class Accumulator:
         kernels.accumulate(enc.idx, enc.val, enc.lev, w, r, wc, self.dense, self.cross,
                            self.diag, self.rhs_d, self.rhs_l, self.col_d, self.col_l)
         for (a, b), out in self.pairs.items():
-            kernels.accumulate_level_pair(enc.lev[:, a], enc.lev[:, b], w, out)
+            kernels.accumulate_level_pair(enc.lev[:, a], enc.lev[:, b], self.level_offsets[a],
+                                          self.level_offsets[b], w, out)
 
     def add_scalars(self, **values: float) -> None:
         for k, v in values.items():

@@ -1,0 +1,207 @@
+"""The ``tallgam`` command line: fit, show, score, sql and demo.
+
+Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
+column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
+file); 4 the fit did not converge (the model file is still written, marked so);
+5 model-file error. Messages go to stderr and say what to do.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import warnings
+
+from . import __version__
+from .errors import (
+    ConvergenceWarning,
+    DataError,
+    FitError,
+    ModelFileError,
+    SpecError,
+    TallgamError,
+)
+
+EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_DATA, EXIT_NOT_CONVERGED, EXIT_MODEL_FILE = 0, 1, 2, 3, 4, 5
+
+
+def _err(msg: str) -> None:
+    print(f"tallgam: {msg}", file=sys.stderr)
+
+
+def _progress(args):
+    if getattr(args, "log_json", False):
+        from .progress import JsonLines
+
+        return JsonLines(sys.stderr)
+    if getattr(args, "quiet", False):
+        return False
+    return True  # a bar only when stderr is a terminal
+
+
+def _show_warnings(caught) -> None:
+    for w in caught:
+        _err(f"warning: {w.message}")
+
+
+def cmd_fit(args) -> int:
+    from .spec import load_spec
+
+    spec = load_spec(args.spec)
+    data = args.data or spec.data
+    if not data:
+        raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
+    out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
+    fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
+                         threads=args.threads or spec.threads, progress=_progress(args))
+    fit.save(out)
+    if not args.quiet:
+        print(fit.summary())
+    print(f"model written to {out}", file=sys.stderr)
+    return EXIT_OK if fit.converged else EXIT_NOT_CONVERGED
+
+
+def cmd_show(args) -> int:
+    from .modelfile import load
+
+    fit = load(args.model)
+    print(fit.summary())
+    prof = fit.profile
+    print(f"\n  training data: {prof.get('rows', 0):,} rows")
+    for key, col in prof.get("columns", {}).items():
+        name = key.split(":", 1)[-1]
+        if col.get("kind") == "numeric":
+            print(f"  - {name}: {col.get('min')} to {col.get('max')} (mean {col.get('mean'):.6g})")
+        else:
+            levels = col.get("levels", {})
+            print(f"  - {name}: {len(levels)} levels")
+    prov = fit.provenance
+    if prov:
+        print(f"\n  fitted {prov.get('fitted_at', '?')} by tallgam {prov.get('tallgam_version')}")
+    return EXIT_OK
+
+
+def cmd_score(args) -> int:
+    from .modelfile import load
+
+    fit = load(args.model)
+    keep = [k for k in (args.keep or "").split(",") if k]
+    report = fit.score(args.input, args.output, keep=keep, terms=args.terms, se=args.se,
+                       unseen=args.unseen, batch_rows=args.batch_rows,
+                       progress=_progress(args))
+    print(f"scored {report.rows:,} rows into {args.output}", file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_sql(args) -> int:
+    from .modelfile import load
+
+    fit = load(args.model)
+    print(fit.to_sql(output=args.output, with_offset=not args.no_offset))
+    return EXIT_OK
+
+
+def cmd_demo(args) -> int:
+    from .demo import run_demo
+    from .report import CAUTION
+
+    def echo(text: str) -> None:
+        print(text, flush=True)
+
+    res = run_demo(args.dir, rows=args.rows, seed=args.seed, progress=_progress(args),
+                   echo=echo)
+    echo(f"\nbook: actual claims {res.actual_claims:,.0f}, expected by the frequency model "
+         f"{res.expected_claims:,.1f} (ratio {res.actual_claims / res.expected_claims:.4f})")
+    echo(f"models: {os.path.join(res.folder, 'frequency.json')}, "
+         f"{os.path.join(res.folder, 'severity.json')}; scores: {res.scored}")
+    echo(f"\n{CAUTION}")
+    return EXIT_OK
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(
+        prog="tallgam",
+        description="Generalized additive models fitted to data larger than memory.",
+        epilog="Exit codes: 0 ok, 1 unexpected failure, 2 usage/spec error, 3 data error, "
+               "4 fit did not converge, 5 model-file error.")
+    p.add_argument("--version", action="version", version=f"tallgam {__version__}")
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    def common(sp, progress=True):
+        sp.add_argument("-q", "--quiet", action="store_true", help="no progress or summary")
+        if progress:
+            sp.add_argument("--log-json", action="store_true",
+                            help="progress as JSON lines on stderr (for batch logs)")
+
+    f = sub.add_parser("fit", help="fit the model of a TOML spec file and write the model file")
+    f.add_argument("spec", help="the spec file (TOML)")
+    f.add_argument("-o", "--output", help="model file to write (default: SPEC with .json)")
+    f.add_argument("--data", help="data source, overriding the spec's 'data'")
+    f.add_argument("--batch-rows", type=int, default=None)
+    f.add_argument("--threads", type=int, default=None)
+    common(f)
+    f.set_defaults(func=cmd_fit)
+
+    s = sub.add_parser("show", help="summary of a saved model")
+    s.add_argument("model")
+    s.set_defaults(func=cmd_show)
+
+    sc = sub.add_parser("score", help="stream predictions of a source into Parquet")
+    sc.add_argument("model")
+    sc.add_argument("input", help="data to score: file, glob or directory")
+    sc.add_argument("-o", "--output", required=True, help="Parquet file to write")
+    sc.add_argument("--keep", help="comma-separated columns to carry through (e.g. keys)")
+    sc.add_argument("--terms", action="store_true", help="add each term's contribution")
+    sc.add_argument("--se", action="store_true", help="add standard errors")
+    sc.add_argument("--unseen", choices=["error", "base"], default="error",
+                    help="unseen levels: stop (default) or use the base level")
+    sc.add_argument("--batch-rows", type=int, default=1_000_000)
+    common(sc)
+    sc.set_defaults(func=cmd_score)
+
+    q = sub.add_parser("sql", help="print a DuckDB SQL expression reproducing the predictions")
+    q.add_argument("model")
+    q.add_argument("--output", choices=["response", "link"], default="response")
+    q.add_argument("--no-offset", action="store_true", help="leave out exposure/offset")
+    q.set_defaults(func=cmd_sql)
+
+    d = sub.add_parser("demo", help="write an invented motor book, fit, summarise and score")
+    d.add_argument("--rows", type=int, default=1_000_000)
+    d.add_argument("--dir", default="tallgam-demo", help="output folder (default tallgam-demo)")
+    d.add_argument("--seed", type=int, default=7)
+    common(d)
+    d.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            code = args.func(args)
+        except SpecError as exc:
+            code = EXIT_USAGE
+            _err(str(exc))
+        except ModelFileError as exc:
+            code = EXIT_MODEL_FILE
+            _err(str(exc))
+        except (DataError, FitError) as exc:
+            code = EXIT_DATA
+            _err(str(exc))
+        except TallgamError as exc:
+            code = EXIT_FAIL
+            _err(str(exc))
+        except KeyboardInterrupt:
+            code = 130
+            _err("interrupted; no partial output was left behind")
+    _show_warnings(w for w in caught if not issubclass(w.category, DeprecationWarning))
+    if any(issubclass(w.category, ConvergenceWarning) for w in caught) and code == EXIT_OK:
+        code = EXIT_NOT_CONVERGED
+    return code
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

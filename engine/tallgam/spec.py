@@ -1,0 +1,162 @@
+"""Model specification files (TOML): the same keys as :class:`tallgam.Model`.
+
+Example::
+
+    data = "policies/*.parquet"          # relative paths are taken from the spec's folder
+    response = "claim_count"
+    family = "poisson"                   # or { name = "tweedie", power = 1.6 }
+    exposure = "exposure"
+    where = "policy_year >= 2022"
+    batch_rows = 1_000_000
+
+    [[term]]
+    kind = "spline"
+    column = "driver_age"
+    size = 12
+
+    [[term]]
+    kind = "categorical"
+    column = "fuel"
+
+Unknown keys and wrong types raise :class:`~tallgam.errors.SpecError` naming the key and
+suggesting the nearest valid one.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from dataclasses import dataclass, field, fields
+
+from .errors import SpecError, nearest
+from .model import Model
+from .terms import SPECS
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+_NUMBER = (int, float)
+MODEL_KEYS: dict[str, tuple] = {
+    "response": (str,), "family": (str, dict), "link": (str,), "exposure": (str,),
+    "offset": (str,), "weights": (str,), "where": (str,), "criterion": (str,),
+    "missing": (str,), "max_iterations": (int,), "tolerance": _NUMBER,
+}
+RUN_KEYS: dict[str, tuple] = {
+    "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
+}
+TERM_TYPES: dict[str, tuple] = {
+    "kind": (str,), "column": (str,), "size": (int,), "knots": (str, list),
+    "penalty": (str,), "smoothing": _NUMBER, "base": (str, int),
+}
+
+
+@dataclass
+class RunSpec:
+    """A parsed spec file: the model and how to run it."""
+
+    model: Model
+    data: str | list[str] | None = None
+    batch_rows: int = 1_000_000
+    threads: int | None = None
+    output: str | None = None
+    path: str | None = None
+    extra: dict = field(default_factory=dict)
+
+
+def _check_type(where: str, key: str, value, types: tuple) -> None:
+    ok = isinstance(value, types) and not (isinstance(value, bool) and bool not in types)
+    if not ok:
+        names = " or ".join("number" if t is float else {str: "string", int: "integer",
+                                                          list: "list", dict: "table"}[t]
+                            for t in types if t is not int or float not in types)
+        raise SpecError(f"{where}: key {key!r} must be a {names}, got {value!r}")
+
+
+def _term_keys(kind: str) -> set[str]:
+    spec_cls = SPECS[kind]
+    return {f.name for f in fields(spec_cls)} | {"kind"}
+
+
+def parse_term(table: dict, index: int) -> object:
+    where = f"[[term]] number {index + 1}"
+    if not isinstance(table, dict):
+        raise SpecError(f"{where} must be a table")
+    kind = table.get("kind")
+    if kind is None:
+        raise SpecError(f"{where} has no 'kind'; use one of {', '.join(SPECS)}")
+    if kind not in SPECS:
+        raise SpecError(f"{where}: unknown kind {kind!r}{nearest(kind, SPECS)}; use one of "
+                        f"{', '.join(SPECS)}")
+    allowed = _term_keys(kind)
+    for key, value in table.items():
+        if key not in allowed:
+            raise SpecError(f"{where} ({kind}): unknown key {key!r}{nearest(key, allowed)}; "
+                            f"valid keys are {', '.join(sorted(allowed))}")
+        if key in TERM_TYPES:
+            _check_type(where, key, value, TERM_TYPES[key])
+    if "column" not in table:
+        raise SpecError(f"{where} ({kind}) needs a 'column'")
+    args = {k: v for k, v in table.items() if k != "kind"}
+    if "base" in args:
+        args["base"] = str(args["base"])
+    return SPECS[kind](**args)
+
+
+def parse_spec(text: str, path: str | None = None) -> RunSpec:
+    """Parse TOML text of a spec; ``path`` locates relative data paths and messages."""
+    label = path or "the spec"
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise SpecError(f"{label} is not valid TOML: {exc}") from None
+    allowed = set(MODEL_KEYS) | set(RUN_KEYS) | {"term"}
+    for key, value in raw.items():
+        if key not in allowed:
+            raise SpecError(f"{label}: unknown key {key!r}{nearest(key, allowed)}; valid keys "
+                            f"are {', '.join(sorted(allowed))}")
+        types = MODEL_KEYS.get(key) or RUN_KEYS.get(key)
+        if types:
+            _check_type(label, key, value, types)
+    if "response" not in raw:
+        raise SpecError(f"{label} needs a 'response'")
+    terms_raw = raw.get("term", [])
+    if not isinstance(terms_raw, list):
+        raise SpecError(f"{label}: terms are written as [[term]] tables")
+    terms = [parse_term(t, i) for i, t in enumerate(terms_raw)]
+    model_args = {k: v for k, v in raw.items() if k in MODEL_KEYS}
+    fam = model_args.get("family")
+    if isinstance(fam, dict):
+        from .families import get_family
+
+        fam = dict(fam)
+        if "name" not in fam:
+            raise SpecError(f"{label}: the family table needs a 'name'")
+        try:
+            model_args["family"] = get_family(fam.pop("name"), **fam)
+        except TypeError as exc:
+            raise SpecError(f"{label}: bad family parameters: {exc}") from None
+    model = Model(terms=terms, **model_args)
+    data = raw.get("data")
+    base = os.path.dirname(os.path.abspath(path)) if path else os.getcwd()
+    if isinstance(data, str):
+        data = _resolve(data, base)
+    elif isinstance(data, list):
+        data = [_resolve(str(d), base) for d in data]
+    return RunSpec(model=model, data=data, batch_rows=int(raw.get("batch_rows", 1_000_000)),
+                   threads=raw.get("threads"), output=raw.get("output"), path=path)
+
+
+def _resolve(p: str, base: str) -> str:
+    return p if os.path.isabs(p) else os.path.join(base, p)
+
+
+def load_spec(path) -> RunSpec:
+    path = os.fspath(path)
+    try:
+        with open(path, encoding="utf-8") as fh:
+            text = fh.read()
+    except OSError as exc:
+        raise SpecError(f"cannot read the spec file {path!r}: {exc.strerror}") from None
+    return parse_spec(text, path)
