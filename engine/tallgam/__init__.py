@@ -6,6 +6,7 @@ dense stage. See ``DEVELOPERS.md`` for the architecture and ``docs/`` for the gu
 """
 
 from .errors import (
+    ColumnNotFound,
     ConvergenceWarning,
     DataError,
     FitError,
@@ -25,6 +26,7 @@ from .terms import categorical, linear, spline
 __version__ = "0.1.0"
 
 __all__ = [
+    "ColumnNotFound",
     "ConvergenceWarning",
     "DataError",
     "FitError",

@@ -175,7 +175,15 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _terminate(signum, frame):  # SIGTERM unwinds like Ctrl-C, so temporary files are removed
+    raise KeyboardInterrupt
+
+
 def main(argv: list[str] | None = None) -> int:
+    import signal
+
+    if argv is None:
+        signal.signal(signal.SIGTERM, _terminate)
     parser = build_parser()
     args = parser.parse_args(argv)
     with warnings.catch_warnings(record=True) as caught:

@@ -19,6 +19,10 @@ class DataError(TallgamError, ValueError):
     """The data cannot be used as asked (missing column, NULLs, values outside support...)."""
 
 
+class ColumnNotFound(DataError, SpecError):
+    """A column the model names is not in the data (a data error and a spec error)."""
+
+
 class ModelFileError(TallgamError, ValueError):
     """A model file is unreadable, of an unknown schema version, or inconsistent."""
 

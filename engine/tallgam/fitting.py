@@ -23,7 +23,7 @@ import numpy as np
 from . import kernels
 from .dense import Constraints
 from .design import Design, batch_columns
-from .errors import ConvergenceWarning, DataError, FitError
+from .errors import ColumnNotFound, ConvergenceWarning, DataError, FitError
 from .model import Model
 from .profile import DataProfile, Field, Rule, run_profile
 from .progress import Event, make_callback
@@ -67,7 +67,7 @@ def column_or_expression(source: Source, text: str, role: str) -> str:
     except DataError as exc:
         from .errors import nearest
 
-        raise DataError(
+        raise ColumnNotFound(
             f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"
             f" nor a SQL expression DuckDB accepts ({exc})") from None
     return f"({text})"

@@ -18,7 +18,7 @@ from pathlib import Path
 import duckdb
 import pyarrow as pa
 
-from .errors import DataError, nearest
+from .errors import ColumnNotFound, DataError, nearest
 
 SOURCE_NAME = "tallgam_source"
 _PARQUET = (".parquet", ".pq", ".parq")
@@ -68,7 +68,7 @@ class Source:
         missing = [c for c in names if c not in self.schema]
         if missing:
             hints = "; ".join(f"{c!r}{nearest(c, self.schema)}" for c in missing)
-            raise DataError(
+            raise ColumnNotFound(
                 f"{label_columns(missing)} not found in {self.label}: {hints}. "
                 f"Available columns: {', '.join(self.schema)}"
             )
