@@ -205,6 +205,10 @@ def main(argv: list[str] | None = None) -> int:
         except KeyboardInterrupt:
             code = 130
             _err("interrupted; no partial output was left behind")
+        except BrokenPipeError:  # e.g. `tallgam sql m.json | head`: the reader left early
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+            code = EXIT_OK
     _show_warnings(w for w in caught if not issubclass(w.category, DeprecationWarning))
     if any(issubclass(w.category, ConvergenceWarning) for w in caught) and code == EXIT_OK:
         code = EXIT_NOT_CONVERGED
