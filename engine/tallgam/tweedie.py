@@ -41,6 +41,8 @@ _LOG_TOL = math.log(1e-17)
 # (p−1)·j_max exceeds ~3e9 (e.g. y ~ 1e10 with φ ~ 1e-5).
 _MAX_TERMS = 1_000_000
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
+# Arrays at least this long are evaluated on all threads.
+_PARALLEL_MIN = 20_000
 
 
 def tweedie_logpdf(y, mu, phi, power) -> np.ndarray:
@@ -90,9 +92,15 @@ def tweedie_logpdf(y, mu, phi, power) -> np.ndarray:
     return out
 
 
-@numba.njit(cache=True, parallel=True)
 def _logpdf_positive(y, mu, phi, p):
     """log f(y) for y > 0 (1-d arrays), and the number of truncated series."""
+    # Starting the thread pool costs far more than a short array takes serially.
+    kernel = _logpdf_parallel if y.size >= _PARALLEL_MIN else _logpdf_serial
+    return kernel(y, mu, phi, p)
+
+
+@numba.njit(cache=True, parallel=True)
+def _logpdf_parallel(y, mu, phi, p):
     n = y.shape[0]
     out = np.empty(n)
     truncated = np.zeros(n, dtype=np.int64)
@@ -102,7 +110,19 @@ def _logpdf_positive(y, mu, phi, p):
 
 
 @numba.njit(cache=True)
+def _logpdf_serial(y, mu, phi, p):
+    n = y.shape[0]
+    out = np.empty(n)
+    truncated = 0
+    for i in range(n):
+        out[i], t = _logpdf_one(y[i], mu[i], phi[i], p)
+        truncated += t
+    return out, truncated
+
+
+@numba.njit(cache=True)
 def _logpdf_one(y, mu, phi, p):
+    """(log f(y), 1 if the series hit the term cap else 0) for one y > 0."""
     a = (2 - p) / (p - 1)
     lam = mu ** (2 - p) / (phi * (2 - p))
     u = y / (phi * (p - 1) * mu ** (p - 1))
