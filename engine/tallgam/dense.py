@@ -3,8 +3,10 @@
 Raw coefficients β (as the kernels see them) and free coefficients γ are linked by
 β = Zγ with Z block diagonal, one block per term: a sum-to-zero null space for smooths
 (Σᵢ wᵢ f(xᵢ) = 0 over the training rows, w the constraint weights), the base level
-dropped for categoricals, identity elsewhere. The constraint is fixed from the column
-sums of the first data pass and kept for every later pass.
+dropped for categoricals, identity elsewhere; a penalized term's free coordinates are
+then turned to the eigenvectors of its penalty, null space first (:func:`penalty_coordinates`).
+The constraint is fixed from the column sums of the first data pass and kept for every
+later pass.
 """
 
 from __future__ import annotations
@@ -14,7 +16,7 @@ from scipy import linalg
 
 from .design import Design
 from .errors import FitError
-from .smoothing import PenaltyBlock, WorkingProblem
+from .smoothing import PenaltyBlock, WorkingProblem, null_eigenvalues
 from .state import PassState
 
 
@@ -23,7 +25,11 @@ class Constraints:
 
     def __init__(self, design: Design, colsum: np.ndarray):
         self.design = design
-        zs = [b.constraint(colsum[sl]) for b, sl in zip(design.bases, design.slices)]
+        zs, penalties = [], []
+        for b, sl in zip(design.bases, design.slices):
+            z, mats = penalty_coordinates(b.constraint(colsum[sl]), b.penalties())
+            zs.append(z)
+            penalties.append(mats)
         self.Z = linalg.block_diag(*zs) if zs else np.zeros((0, 0))
         # block_diag follows bases order; raw order is dense group first, then levels
         order = np.concatenate([np.arange(sl.start, sl.stop) for sl in design.slices])
@@ -40,8 +46,7 @@ class Constraints:
         self.fixed: list[float | None] = []
         self.penalty_owner: list[int] = []  # basis index of every penalty
         first = 0
-        for j, (b, z, fsl) in enumerate(zip(design.bases, zs, self.free_slices)):
-            mats = [z.T @ s @ z for s in b.penalties()]
+        for j, (b, mats, fsl) in enumerate(zip(design.bases, penalties, self.free_slices)):
             if not mats:
                 continue
             self.blocks.append(PenaltyBlock(sl=fsl, matrices=mats, first=first))
@@ -97,6 +102,34 @@ class Constraints:
             if sl.start <= free_index < sl.stop:
                 return j
         return 0
+
+
+def penalty_coordinates(z: np.ndarray, penalties: list[np.ndarray]
+                        ) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Turn a term's free coordinates to the eigenvectors of its total penalty, null space
+    first, and give its penalties in them with exact zeros on the null space.
+
+    Returns (z·V, [Vᵀ(zᵀS_k z)V]). In raw coordinates a penalty's null space is only null
+    to rounding, eps·‖S‖; times a large λ that error swamps the data term along the null
+    space (a nearly straight smooth: its λ heads for the bound) and makes D_p, the REML
+    score and its gradient noise. With the null space split off exactly, H = A + S_λ
+    keeps A alone there, and the Jacobi-scaled factorisation stays accurate for any λ.
+    """
+    if not penalties:
+        return z, []
+    mats = [z.T @ s @ z for s in penalties]
+    total = sum(m / max(np.abs(m).max(), 1e-300) for m in mats)
+    vals, vecs = np.linalg.eigh(0.5 * (total + total.T))  # ascending: null space first
+    k = int(np.sum(null_eigenvalues(vals)))
+    rng = vecs[:, k:]
+    out = []
+    for m in mats:
+        r = rng.T @ m @ rng
+        r = np.diag(np.diag(r)) if len(mats) == 1 else 0.5 * (r + r.T)
+        full = np.zeros_like(m)
+        full[k:, k:] = r
+        out.append(full)
+    return z @ vecs, out
 
 
 def _level_offsets(d: Design) -> list[int]:

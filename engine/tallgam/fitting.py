@@ -23,7 +23,7 @@ import numpy as np
 from . import kernels
 from .dense import Constraints
 from .design import Design, batch_columns
-from .errors import ColumnNotFound, ConvergenceWarning, DataError, FitError
+from .errors import ColumnNotFound, ConvergenceWarning, DataError, FitError, TallgamWarning
 from .model import Model
 from .profile import DataProfile, Field, Rule, run_profile
 from .progress import Event, make_callback
@@ -268,8 +268,8 @@ def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
     callback(Event("end", "profile", rows=profile.rows))
     check_profile(profile, source, model)
     if dropped:
-        warnings.warn(f"{dropped} row(s) with missing or non-finite values were left out "
-                      "(missing='drop')", stacklevel=3)
+        warnings.warn(TallgamWarning(f"{dropped} row(s) with missing or non-finite values were "
+                                     "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
     y_mean = profile["response"].mean

@@ -34,6 +34,15 @@ from .errors import FitError
 RHO_BOUND = 30.0  # |log relative λ| limit: e^30 ≈ 1e13 is "a straight line" in practice
 
 
+def null_eigenvalues(vals: np.ndarray) -> np.ndarray:
+    """Which eigenvalues of a penalty are zero: those within rounding of the largest
+    (10·k·eps relative, k the matrix size). A fixed ratio such as 1e-10 would count the
+    smallest true eigenvalues of a basis with many close knots as zeros."""
+    if not vals.size:
+        return np.zeros(0, dtype=bool)
+    return vals <= vals.max() * 10.0 * len(vals) * np.finfo(np.float64).eps
+
+
 @dataclass
 class PenaltyBlock:
     """The penalties of one term, on coefficients ``sl`` (constrained coordinates)."""
@@ -47,7 +56,7 @@ class PenaltyBlock:
     def __post_init__(self):
         total = sum(m / max(np.abs(m).max(), 1e-300) for m in self.matrices)
         vals, vecs = np.linalg.eigh(0.5 * (total + total.T))
-        keep = vals > vals.max() * 1e-10 if vals.size else np.zeros(0, bool)
+        keep = ~null_eigenvalues(vals)
         self.range_basis = vecs[:, keep]
         self.rank = int(keep.sum())
         self._reduced = [self.range_basis.T @ m @ self.range_basis for m in self.matrices]
@@ -227,6 +236,18 @@ class _Criterion:
         sol.criterion_name = self.name
         return float(value), grad[self.free], sol
 
+    def unit(self, value: float) -> float:
+        """Factor that makes gradient and Hessian unit-free and independent of the number of
+        rows, for the convergence test and the Newton step's safeguards: REML is a
+        log-likelihood, whose derivatives by log λ are of the order of effective degrees of
+        freedom whatever n and the response's units; GCV and UBRE are mean squared errors,
+        so n/value (GCV) or n/φ (UBRE) brings them to the same footing."""
+        if self.name == "reml":
+            return 1.0
+        if self.name == "gcv":
+            return self.p.n / max(abs(value), 1e-300)
+        return self.p.n / self.scale
+
 
 def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
            start: np.ndarray | None = None, gamma_factor: float = 1.0,
@@ -254,25 +275,29 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
     converged = False
     it = 0
     for it in range(1, max_iter + 1):  # noqa: B007
+        unit = crit.unit(value)  # the step's safeguards work on the unit-free criterion
         hess = _fd_hessian(crit, rho, grad)
-        step = _newton_step(hess, grad, rho)
+        step = _newton_step(hess * unit, grad * unit, rho)
         if step is None:
             converged = True
             break
         accepted = False
+        # a REML value holds n/2·log(φ): its rounding grows with n, and near the optimum a
+        # Newton step gains less than that, so rises below the rounding level are allowed
+        noise = 1e-13 * (1.0 + abs(value))
         for _ in range(30):
             trial = np.clip(rho + step, -RHO_BOUND, RHO_BOUND)
             t_value, t_grad, t_sol = _evaluate(crit, trial)
-            if t_value <= value + 1e-4 * min(0.0, float(grad @ (trial - rho))):
+            if t_value <= value + 1e-4 * min(0.0, float(grad @ (trial - rho))) + noise:
                 accepted = True
                 break
             step *= 0.5
         if not accepted:
-            converged = _is_stationary(grad, rho, value, tol)
+            converged = _is_stationary(grad * unit, rho, tol)
             break
         change = abs(value - t_value)
         rho, value, grad, sol = trial, t_value, t_grad, t_sol
-        if _is_stationary(grad, rho, value, tol) or (
+        if _is_stationary(grad * crit.unit(value), rho, tol) or (
                 change <= tol * (1.0 + abs(value)) and np.max(np.abs(step)) < 1e-6):
             converged = True
             break
@@ -301,11 +326,15 @@ def _safe_solve(problem: WorkingProblem, lam: np.ndarray) -> Solution:
             "knots.") from exc
 
 
-def _is_stationary(grad, rho, value, tol) -> bool:
+def _is_stationary(grad, rho, tol) -> bool:
+    """True when the unit-free gradient (see :meth:`_Criterion.unit`) is zero to ``tol``,
+    except where a bound stops the way downhill. Not relative to the criterion's value: a
+    REML value grows with n, and a tolerance relative to it would stop far from the optimum
+    on large data."""
     at_lo = (rho <= -RHO_BOUND + 1e-9) & (grad > 0)
     at_hi = (rho >= RHO_BOUND - 1e-9) & (grad < 0)
     g = np.where(at_lo | at_hi, 0.0, grad)
-    return bool(np.max(np.abs(g), initial=0.0) <= max(tol, 1e-7) * (1.0 + abs(value)))
+    return bool(np.max(np.abs(g), initial=0.0) <= max(tol, 1e-7))
 
 
 def _fd_hessian(crit: _Criterion, rho: np.ndarray, grad: np.ndarray, h: float = 1e-4):
