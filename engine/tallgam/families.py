@@ -29,6 +29,7 @@ class Family:
     default_link = "identity"
     links: tuple[str, ...] = ()
     scale_known = False  # True: φ = 1 (poisson, binomial, negative binomial)
+    loglik_in_pass = True  # False: too costly per row to evaluate in every data pass
     response_rules: tuple[tuple[str, str], ...] = ()  # (SQL condition on {y}, message)
 
     def variance(self, mu: np.ndarray) -> np.ndarray:
@@ -56,8 +57,25 @@ class Family:
                 f"use one of {', '.join(self.links)}"
             )
 
+    @property
+    def estimates_nuisance(self) -> bool:
+        """True when the family has an extra parameter estimated between passes."""
+        return False
+
+    def nuisance_sums(self, y, mu, w) -> tuple[float, float]:
+        """(score, information) of the extra parameter on the log scale, summed over rows."""
+        return 0.0, 0.0
+
+    def with_nuisance(self, score: float, info: float) -> Family:
+        """The family after one Newton step of its extra parameter (itself if none)."""
+        return self
+
     def params(self) -> dict:
         return {}
+
+    def fitted_params(self) -> dict:
+        """The parameter values in use (estimated ones filled in)."""
+        return self.params()
 
     def to_dict(self) -> dict:
         return {"name": self.name, **self.params()}
@@ -178,21 +196,48 @@ class InverseGaussian(Family):
 
 
 class Tweedie(Family):
-    """Compound Poisson–gamma, 1 < power < 2: exact zeros and positive amounts."""
+    """Compound Poisson–gamma, 1 < power < 2: exact zeros and positive amounts.
+
+    ``power`` is a number in (1, 2), or ``"profile"`` (or a list of candidate powers) to
+    choose it by profile likelihood: the model is fitted at each candidate and the power
+    with the highest log-likelihood (series density, Dunn & Smyth 2005) is kept.
+    """
 
     name = "tweedie"
     default_link = "log"
     links = ("log",)
     response_rules = (("{y} < 0", "negative values"),)
+    loglik_in_pass = False  # the series density costs ~1 µs a row: evaluated once, at the end
+    PROFILE_GRID = (1.1, 1.2, 1.3, 1.4, 1.5, 1.6, 1.7, 1.8, 1.9)
 
-    def __init__(self, power: float = 1.5):
-        power = float(power)
-        if not 1.0 < power < 2.0:
-            raise SpecError(f"tweedie power must lie strictly between 1 and 2, got {power}")
-        self.power = power
+    def __init__(self, power: float | str | list = 1.5):
+        self.grid: tuple[float, ...] | None = None
+        if isinstance(power, str):
+            if power != "profile":
+                raise SpecError(f"tweedie power must be a number in (1, 2) or 'profile', "
+                                f"got {power!r}")
+            self.grid = self.PROFILE_GRID
+            power = 1.5
+        elif isinstance(power, (list, tuple)):
+            self.grid = tuple(sorted(float(p) for p in power))
+            if len(self.grid) < 2:
+                raise SpecError("give at least two tweedie powers to choose from")
+            power = self.grid[len(self.grid) // 2]
+        for p in (self.grid or ()) + (float(power),):
+            if not 1.0 < p < 2.0:
+                raise SpecError(f"tweedie power must lie strictly between 1 and 2, got {p}")
+        self.power = float(power)
 
     def params(self):
+        if self.grid is not None:
+            return {"power": "profile" if self.grid == self.PROFILE_GRID else list(self.grid)}
         return {"power": self.power}
+
+    def fitted_params(self):
+        return {"power": self.power}
+
+    def at_power(self, power: float) -> Tweedie:
+        return Tweedie(power)
 
     def variance(self, mu):
         return mu ** self.power
@@ -212,7 +257,12 @@ class Tweedie(Family):
 
 
 class NegativeBinomial(Family):
-    """Negative binomial with V(μ) = μ + μ²/θ; θ fixed here (estimated by the driver)."""
+    """Negative binomial with V(μ) = μ + μ²/θ.
+
+    ``theta`` fixed, or ``None`` to estimate it by maximum likelihood alongside the
+    coefficients: one Newton step on log θ after every data pass (the score and information
+    are sums over rows, accumulated in the pass).
+    """
 
     name = "negative_binomial"
     default_link = "log"
@@ -220,14 +270,42 @@ class NegativeBinomial(Family):
     scale_known = True
     response_rules = Poisson.response_rules
 
-    def __init__(self, theta: float = 1.0):
-        theta = float(theta)
+    def __init__(self, theta: float | None = None, *, _estimate: bool | None = None):
+        self.estimate = theta is None if _estimate is None else _estimate
+        theta = 1.0 if theta is None else float(theta)
         if not theta > 0:
             raise SpecError(f"negative_binomial theta must be positive, got {theta}")
         self.theta = theta
 
     def params(self):
+        return {"theta": None if self.estimate else self.theta}
+
+    @property
+    def estimates_nuisance(self) -> bool:
+        return self.estimate
+
+    def fitted_params(self):
         return {"theta": self.theta}
+
+    def nuisance_sums(self, y, mu, w):
+        t = self.theta
+        tm = t + mu
+        g = (special.digamma(y + t) - special.digamma(t) + np.log(t) + 1.0 - np.log(tm)
+             - (y + t) / tm)
+        h = (special.polygamma(1, y + t) - special.polygamma(1, t) + 1.0 / t - 2.0 / tm
+             + (y + t) / (tm * tm))
+        score = t * float(np.sum(w * g))            # d loglik / d log θ
+        info = t * t * float(np.sum(w * h)) + score  # d² loglik / d (log θ)²
+        return score, info
+
+    def with_nuisance(self, score, info):
+        if info < 0:
+            step = -score / info
+        else:  # not concave here: move uphill by a bounded amount
+            step = np.sign(score)
+        step = float(np.clip(step, -2.0, 2.0))
+        theta = float(np.clip(self.theta * np.exp(step), 1e-8, 1e8))
+        return NegativeBinomial(theta, _estimate=self.estimate)
 
     def variance(self, mu):
         return mu + mu * mu / self.theta

@@ -219,6 +219,8 @@ class FitState:
     dropped_rows: int
     seconds: float
     expressions: dict = field(default_factory=dict)
+    family: object = None         # the family as fitted (estimated parameters filled in)
+    extra_statistics: dict = field(default_factory=dict)
 
 
 def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
@@ -237,9 +239,13 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            fs = _fit(model, source, int(batch_rows), callback)
+            if getattr(model.family, "grid", None):
+                fs = _profile_tweedie_power(model, source, int(batch_rows), callback)
+            else:
+                fs = _fit(model, source, int(batch_rows), callback)
         for w in caught:
-            fs.notes.append(str(w.message))
+            if str(w.message) not in fs.notes:
+                fs.notes.append(str(w.message))
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
         fs.seconds = time.perf_counter() - t0
         callback(Event("end", "done"))
@@ -250,8 +256,41 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
     return FitResult.from_state(fs)
 
 
+def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callback
+                           ) -> FitState:
+    """Fit at every candidate Tweedie power, then at the maximum of a parabola through the
+    best candidate and its neighbours; keep the fit with the highest log-likelihood."""
+    from dataclasses import replace
+
+    grid = model.family.grid
+    fits: dict[float, FitState] = {}
+    for p in grid:
+        callback(Event("note", "profile", message=f"tweedie power {p:g}"))
+        fits[p] = _fit(replace(model, family=model.family.at_power(p)), source, batch_rows,
+                       callback)
+    lls = np.array([fits[p].loglik for p in grid])
+    i = int(np.argmax(lls))
+    if 0 < i < len(grid) - 1:
+        x, y = np.array(grid[i - 1:i + 2]), lls[i - 1:i + 2]
+        a, b, _ = np.polyfit(x, y, 2)
+        if a < 0:
+            p_star = float(np.clip(-b / (2 * a), x[0], x[2]))
+            if min(abs(p_star - g) for g in grid) > 1e-3:
+                fits[p_star] = _fit(replace(model, family=model.family.at_power(p_star)),
+                                    source, batch_rows, callback)
+    best = max(fits, key=lambda p: fits[p].loglik)
+    fs = fits[best]
+    fs.passes = sum(f.passes for f in fits.values())
+    table = sorted((float(p), float(f.loglik)) for p, f in fits.items())
+    fs.extra_statistics["power_profile"] = [list(t) for t in table]
+    fs.notes.append(
+        "tweedie power chosen by profile likelihood: "
+        + ", ".join(f"{p:.3g} → {ll:.6g}" for p, ll in table) + f"; kept {best:.4g}")
+    return fs
+
+
 def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
-    fam, link = model.family, model.link
+    fam = model.family
     inputs = model_inputs(model, source, model.terms)
     callback(Event("start", "profile"))
     profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where)
@@ -272,115 +311,168 @@ def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
-    y_mean = profile["response"].mean
-    start_shift = _start_shift(model, profile)
+    run = _Run(model, fam, source, inputs, design, profile, batch_rows, callback)
+    return run.iterate(dropped)
 
-    scale_known = fam.scale_known
-    exact = fam.name == "gaussian" and link.name == "identity"
-    history: list[PassRecord] = []
-    constraints: Constraints | None = None
-    beta = None            # current iterate (raw), None before the first solve
-    beta_prev = None
-    lam = None
-    rho = None
-    prev_dev = None        # deviance of beta_prev (from its pass)
-    null_beta0 = start_shift
-    scale_est = 1.0
-    halvings = 0
-    converged = False
-    solution = None
-    last: Solution | None = None
-    state = None
-    passes = 0
-    notes: list[str] = []
-    while passes < model.max_iterations:
-        passes += 1
-        t_pass = time.perf_counter()
-        state = _data_pass(source, inputs, design, model, beta, start_shift, null_beta0,
-                           y_mean, scale_est, batch_rows, callback, passes, profile.rows)
-        if constraints is None:
-            constraints = Constraints(design, state.colsum)
-        null_beta0 = null_beta0 + _null_step(state)
-        dev = state.scalars["deviance"]
-        if beta is not None:
-            S = _raw_penalty(constraints, lam)
-            pdev = dev + beta @ S @ beta
-            if beta_prev is not None and prev_dev is not None:
-                prev_pdev = prev_dev + beta_prev @ S @ beta_prev
-                if pdev > prev_pdev * (1 + 1e-9) + 1e-12 and halvings < 25:
-                    halvings += 1
-                    history.append(PassRecord(passes, "halved", dev, pdev, list(lam),
-                                              time.perf_counter() - t_pass,
-                                              int(state.scalars["rows"])))
-                    beta = 0.5 * (beta + beta_prev)
-                    continue
-                if abs(pdev - prev_pdev) <= model.tolerance * (abs(pdev) + 1e-3):
-                    history.append(PassRecord(passes, "step", dev, pdev, list(lam),
-                                              time.perf_counter() - t_pass,
-                                              int(state.scalars["rows"])))
-                    solution = _final_solution(constraints, state, beta, lam, last)
-                    converged = True
-                    break
+
+class _Run:
+    """The PIRLS iterations of one fit (state between data passes)."""
+
+    def __init__(self, model, fam, source, inputs, design, profile, batch_rows, callback):
+        self.model, self.fam, self.link = model, fam, model.link
+        self.source, self.inputs, self.design = source, inputs, design
+        self.profile, self.batch_rows, self.callback = profile, batch_rows, callback
+        self.y_mean = profile["response"].mean
+        self.start_shift = _start_shift(model, profile)
+        self.null_beta0 = self.start_shift
+        self.scale_est = 1.0
+        self.passes = 0
+
+    def data_pass(self, beta, beta_prev=None) -> PassState:
+        self.passes += 1
+        state = _data_pass(self, beta, beta_prev)
+        self.null_beta0 += _null_step(state)
+        return state
+
+    def iterate(self, dropped: int) -> FitState:
+        model, design = self.model, self.design
+        scale_known = self.fam.scale_known
+        exact = self.fam.name == "gaussian" and self.link.name == "identity"
+        history: list[PassRecord] = []
+        constraints: Constraints | None = None
+        beta = None            # current iterate (raw); None before the first solve
+        beta_prev = None       # the iterate before it, with its deviance from its own pass
+        prev_dev = None
+        lam = rho = None
         halvings = 0
-        anchor = beta if beta is not None else _intercept_only(design, start_shift)
-        problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
-        if passes == 1:
-            constraints.check_identifiable(problem)
-        sol = select(problem, model.criterion, constraints.fixed, start=rho)
-        if sol is None:
-            raise FitError("smoothing selection failed: the penalized equations are singular")
-        notes.extend(n for n in sol.notes if n not in notes)
-        last = sol
-        rho = _rho_of(sol.lam, problem, constraints)
-        beta_prev, prev_dev = beta, (dev if beta is not None else None)
-        beta = constraints.to_raw(sol.gamma)
-        lam = sol.lam
-        scale_est = _scale_estimate(state, sol, scale_known, exact)
-        history.append(PassRecord(passes, "start" if beta_prev is None else "step", dev,
-                                  dev + (0.0 if beta_prev is None else
-                                         float(beta_prev @ _raw_penalty(constraints, lam)
-                                               @ beta_prev)),
-                                  list(lam), time.perf_counter() - t_pass,
-                                  int(state.scalars["rows"])))
+        converged = False
+        nuisance_moved = False
+        last: Solution | None = None
+        notes: list[str] = []
+        while True:
+            t_pass = time.perf_counter()
+            state = self.data_pass(beta, beta_prev)
+            if constraints is None:
+                constraints = Constraints(design, state.colsum)
+            dev = state.scalars["deviance"]
+            rows = int(state.scalars["rows"])
+            if beta is not None:  # this pass evaluated beta
+                # deviances of two passes compare only if the family's parameters were equal
+                comparable = not nuisance_moved
+                nuisance_moved = self._update_nuisance(state)
+                S = _raw_penalty(constraints, lam)
+                pdev = dev + beta @ S @ beta
+                record = PassRecord(self.passes, "step", dev, pdev, list(lam),
+                                    time.perf_counter() - t_pass, rows)
+                if beta_prev is not None and prev_dev is not None and comparable:
+                    prev_pdev = prev_dev + beta_prev @ S @ beta_prev
+                    if (pdev > prev_pdev * (1 + 1e-9) + 1e-12 and halvings < 25
+                            and self.passes < model.max_iterations):
+                        halvings += 1
+                        record.kind = "halved"
+                        history.append(record)
+                        beta = 0.5 * (beta + beta_prev)
+                        continue
+                    if (abs(pdev - prev_pdev) <= model.tolerance * (abs(pdev) + 1e-3)
+                            and state.scalars["max_eta_change"] <= ETA_TOLERANCE):
+                        history.append(record)
+                        converged = True
+                        break
+                if self.passes >= model.max_iterations:
+                    history.append(record)
+                    break
+                history.append(record)
+            halvings = 0
+            anchor = beta if beta is not None else _intercept_only(design, self.start_shift)
+            problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
+            if last is None:
+                constraints.check_identifiable(problem)
+            sol = select(problem, model.criterion, constraints.fixed, start=rho)
+            notes.extend(n for n in sol.notes if n not in notes)
+            last = sol
+            rho = _rho_of(sol.lam, problem, constraints)
+            beta_prev, prev_dev = beta, (dev if beta is not None else None)
+            beta = constraints.to_raw(sol.gamma)
+            lam = sol.lam
+            self.scale_est = _scale_estimate(state, sol, scale_known, exact)
+            if exact:
+                history.append(PassRecord(self.passes, "exact", dev, dev, list(lam),
+                                          time.perf_counter() - t_pass, rows))
+                converged = True
+                break
         if exact:
-            solution = sol
-            converged = True
-            break
-    if not converged:
-        msg = (f"PIRLS did not converge in {model.max_iterations} data passes (relative change "
-               f"of the penalized deviance above {model.tolerance:g}); the estimates are from "
-               "the last pass. Raise max_iterations or check the model.")
-        warnings.warn(ConvergenceWarning(msg), stacklevel=3)
-        notes.append(msg)
-        solution = _final_solution(constraints, state, beta, lam, last)
-    if exact:
-        deviance = solution.deviance
-        null_dev = state.scalars["null_deviance"] - state.scalars["null_score"] ** 2 / max(
-            state.scalars["null_weight"], 1e-300)
-    else:
-        deviance = state.scalars["deviance"]
-        null_dev = state.scalars["null_deviance"]
-    n = state.scalars["rows"]
-    edf_total = float(np.sum(solution.edf))
-    if scale_known:
-        scale = 1.0
-    elif exact:
-        scale = deviance / max(n - edf_total, 1.0)
-    else:
-        scale = state.scalars["pearson"] / max(n - edf_total, 1.0)
-    if fam.name == "gaussian":
-        loglik = -0.5 * (deviance / scale + n * np.log(2 * np.pi * scale)
-                         - state.scalars["log_weight"])
-    else:
-        loglik = state.scalars["loglik"]
-    state.scalars["deviance"] = deviance
-    if exact:  # the pass ran at the starting values; the fit's residuals are the deviance
-        state.scalars["response_ss"] = state.scalars["pearson"] = deviance
-    return FitState(model=model, design=design, constraints=constraints, profile=profile,
-                    beta=beta, solution=solution, state=state, scale=scale, converged=converged,
-                    passes=passes, history=history, null_deviance=null_dev, loglik=loglik,
-                    notes=notes, dropped_rows=dropped, seconds=0.0,
-                    expressions=resolved_expressions(inputs))
+            solution = last
+        else:
+            solution = _final_solution(constraints, state, beta, lam, last)
+        if not converged:
+            msg = (f"PIRLS did not converge in {self.passes} data passes (relative change of "
+                   f"the penalized deviance above {model.tolerance:g}); the estimates and "
+                   "statistics are those of the last pass. Raise max_iterations or check the "
+                   "model.")
+            warnings.warn(ConvergenceWarning(msg), stacklevel=4)
+        return self._finish(state, beta, solution, constraints, converged, history, notes,
+                            dropped, exact)
+
+    def _update_nuisance(self, state: PassState) -> bool:
+        """One Newton step for a family's estimated extra parameter; True while it moves."""
+        if not self.fam.estimates_nuisance:
+            return False
+        old = self.fam
+        new = old.with_nuisance(state.scalars["nuisance_score"], state.scalars["nuisance_info"])
+        if abs(np.log(new.theta / old.theta)) <= 1e-10:  # settled: freeze it exactly
+            return False
+        self.fam = new
+        return True
+
+    def _finish(self, state, beta, solution, constraints, converged, history, notes, dropped,
+                exact) -> FitState:
+        fam = self.fam
+        sc = state.scalars
+        n = sc["rows"]
+        if exact:
+            deviance = solution.deviance
+            null_dev = sc["null_deviance"] - sc["null_score"] ** 2 / max(sc["null_weight"],
+                                                                          1e-300)
+        else:
+            deviance = sc["deviance"]
+            null_dev = sc["null_deviance"]
+        edf_total = float(np.sum(solution.edf))
+        if fam.scale_known:
+            scale = 1.0
+        elif exact:
+            scale = deviance / max(n - edf_total, 1.0)
+        else:
+            scale = sc["pearson"] / max(n - edf_total, 1.0)
+        if fam.name == "gaussian":
+            loglik = -0.5 * (deviance / scale + n * np.log(2 * np.pi * scale) - sc["log_weight"])
+        elif fam.scale_known:
+            loglik = sc["loglik"]
+        elif fam.loglik_in_pass:
+            loglik = _interpolate_loglik(sc, self.scale_est, scale)
+        else:
+            loglik = _loglik_pass(self, beta, scale)
+        sc["deviance"] = deviance
+        if exact:  # the pass ran at the starting values; the fit's residuals are the deviance
+            sc["response_ss"] = sc["pearson"] = deviance
+        fs = FitState(model=self.model, design=self.design, constraints=constraints,
+                      profile=self.profile, beta=beta, solution=solution, state=state,
+                      scale=scale, converged=converged, passes=self.passes, history=history,
+                      null_deviance=null_dev, loglik=loglik, notes=notes, dropped_rows=dropped,
+                      seconds=0.0, expressions=resolved_expressions(self.inputs), family=fam)
+        return fs
+
+
+ETA_TOLERANCE = 1e-6  # largest change of the linear predictor between the last two iterates
+LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
+
+
+def _interpolate_loglik(sc: dict, scale_pass: float, scale: float) -> float:
+    """The log-likelihood at ``scale`` from its values at three scales around the one the
+    pass used (quadratic in log φ; the final scale differs from the pass's by the
+    convergence tolerance, so the error is far below rounding of the sum)."""
+    t = np.log(scale / scale_pass) / LOGLIK_STEP
+    lo, mid, hi = sc["loglik_lo"], sc["loglik"], sc["loglik_hi"]
+    return float(mid + 0.5 * t * (hi - lo) + 0.5 * t * t * (hi - 2 * mid + lo))
 
 
 def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
@@ -449,21 +541,25 @@ def _start_shift(model: Model, profile: DataProfile) -> float:
     return float(eta) if np.isfinite(eta) else 0.0
 
 
-def _data_pass(source, inputs: Inputs, design: Design, model: Model, beta, start_shift,
-               null_beta0, y_mean, scale_est, batch_rows, callback, number, total_rows
-               ) -> PassState:
-    fam, link = model.family, model.link
-    threads = numba.get_num_threads()
-    acc = Accumulator(design.pd, [b.n_raw for b in design.levels], threads)
-    task = f"pass {number}"
-    callback(Event("start", task, total=total_rows))
+def _data_pass(run: _Run, beta, beta_prev) -> PassState:
+    """One pass over the data: the working model at ``beta`` (or at the starting values
+    when ``beta`` is None) accumulated into a :class:`PassState`."""
+    fam, link, design, inputs = run.fam, run.link, run.design, run.inputs
+    acc = Accumulator(design.pd, [b.n_raw for b in design.levels], numba.get_num_threads())
+    task = f"pass {run.passes}"
+    total = run.profile.rows
+    run.callback(Event("start", task, total=total))
     done = 0
     if beta is not None:
         beta_d = np.ascontiguousarray(beta[:design.pd])
         beta_l = np.ascontiguousarray(beta[design.pd:])
-    for batch in source.batches(inputs.select, inputs.where, batch_rows):
+    if beta_prev is not None:
+        step_d = np.ascontiguousarray(beta[:design.pd] - beta_prev[:design.pd])
+        step_l = np.ascontiguousarray(beta[design.pd:] - beta_prev[design.pd:])
+    three_scales = not fam.scale_known and fam.loglik_in_pass and fam.name != "gaussian"
+    scales = run.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
+    for batch in run.source.batches(inputs.select, inputs.where, run.batch_rows):
         cols = batch_columns(batch, inputs.level_names)
-        n = batch.num_rows
         y_all = cols[Y]
         w_all = cols[W] if inputs.has_weights else None
         o_all = cols[O] if inputs.has_offset else None
@@ -474,52 +570,99 @@ def _data_pass(source, inputs: Inputs, design: Design, model: Model, beta, start
             w = w_all[sl] if w_all is not None else np.ones(m)
             o = o_all[sl] if o_all is not None else np.zeros(m)
             wc = wc_all[sl] if wc_all is not None else w
+            extra = {}
             if beta is None:
-                mu = _start_mu(fam, y, w)
+                mu = _start_mu(fam, link, y, w, run.y_mean)
                 eta = link.link(mu)
                 fitted = eta - o  # r is measured from the intercept-only anchor
-                base = start_shift
+                base = run.start_shift
             else:
                 fitted = np.zeros(m)
                 kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, fitted)
                 eta = fitted + o
                 mu = fam.clip_mu(link.inverse(eta))
                 base = None
+                if beta_prev is not None:
+                    change = np.zeros(m)
+                    kernels.linear_predictor(enc.idx, enc.val, enc.lev, step_d, step_l, change)
+                    extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
+                if fam.estimates_nuisance:
+                    extra["nuisance_score"], extra["nuisance_info"] = fam.nuisance_sums(y, mu, w)
             dmu = link.mu_eta(eta)
             var = fam.variance(mu)
-            gprime = 1.0 / dmu
             wz = w * dmu * dmu / var
-            resid = (y - mu) * gprime
-            r = resid + (fitted - base if base is not None else 0.0)
+            r = (y - mu) / dmu
+            if base is not None:
+                r = r + (fitted - base)
+            if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
+                raise FitError(
+                    f"the {link.name} link took the mean of the {fam.name} family outside its "
+                    f"range in {int(np.sum(~np.isfinite(wz * r)))} row(s) of pass {run.passes} "
+                    "(e.g. a log link with non-positive means, an inverse link through zero); "
+                    "use the family's default link or check the response")
             acc.add(enc, wz, r, wc)
-            dev_rows = fam.unit_deviance(y, mu)
             # the intercept-and-offset (null) model, one IRLS step per pass
-            eta0 = o + null_beta0
+            eta0 = o + run.null_beta0
             mu0 = fam.clip_mu(link.inverse(eta0))
             dmu0 = link.mu_eta(eta0)
             w0 = w * dmu0 * dmu0 / fam.variance(mu0)
-            r0 = (y - mu0) / dmu0
+            if not three_scales:
+                ll = {"loglik": fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0}
+            else:
+                ll = dict(zip(("loglik_lo", "loglik", "loglik_hi"),
+                              (fam.loglik(y, mu, w, sc) for sc in scales)))
             acc.add_scalars(
                 rows=m, weight=np.sum(w), resid_ss=np.sum(wz * r * r),
-                deviance=np.sum(w * dev_rows), pearson=np.sum(w * (y - mu) ** 2 / var),
+                deviance=np.sum(w * fam.unit_deviance(y, mu)),
+                pearson=np.sum(w * (y - mu) ** 2 / var),
                 response_ss=np.sum(w * (y - mu) ** 2),
-                centred_ss=np.sum(w * (y - y_mean) ** 2), centred_sum=np.sum(w * (y - y_mean)),
-                log_weight=np.sum(np.log(w)),
-                loglik=fam.loglik(y, mu, w, scale_est) if fam.name != "gaussian" else 0.0,
+                centred_ss=np.sum(w * (y - run.y_mean) ** 2),
+                centred_sum=np.sum(w * (y - run.y_mean)), log_weight=np.sum(np.log(w)),
                 null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
-                null_weight=np.sum(w0), null_score=np.sum(w0 * r0))
-        done += n
-        callback(Event("advance", task, rows=done, total=total_rows))
-    callback(Event("end", task, rows=done, total=total_rows))
+                null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0), **ll, **extra)
+        done += batch.num_rows
+        run.callback(Event("advance", task, rows=done, total=total))
+    run.callback(Event("end", task, rows=done, total=total))
     return acc.finish()
 
 
-def _start_mu(fam, y: np.ndarray, w: np.ndarray) -> np.ndarray:
+def _loglik_pass(run: _Run, beta, scale: float) -> float:
+    """One light pass for the log-likelihood at the final coefficients and scale (for
+    families whose density is too costly to evaluate in every pass)."""
+    fam, link, design, inputs = run.fam, run.link, run.design, run.inputs
+    beta_d = np.ascontiguousarray(beta[:design.pd])
+    beta_l = np.ascontiguousarray(beta[design.pd:])
+    run.passes += 1
+    task = f"pass {run.passes}"
+    run.callback(Event("start", task, total=run.profile.rows, message="log-likelihood"))
+    total = 0.0
+    done = 0
+    for batch in run.source.batches(inputs.select, inputs.where, run.batch_rows):
+        cols = batch_columns(batch, inputs.level_names)
+        for sl, enc in design.blocks(cols):
+            m = sl.stop - sl.start
+            eta = cols[O][sl].copy() if inputs.has_offset else np.zeros(m)
+            kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, eta)
+            w = cols[W][sl] if inputs.has_weights else np.ones(m)
+            total += fam.loglik(cols[Y][sl], fam.clip_mu(link.inverse(eta)), w, scale)
+        done += batch.num_rows
+        run.callback(Event("advance", task, rows=done, total=run.profile.rows))
+    run.callback(Event("end", task, rows=done, total=run.profile.rows))
+    return total
+
+
+def _start_mu(fam, link, y: np.ndarray, w: np.ndarray, y_mean: float) -> np.ndarray:
     """Per-row starting means (McCullagh & Nelder 1989, §2.5: μ₀ from y, nudged inside
-    the mean space)."""
+    the mean space); rows where the link of that value is not finite start at the mean."""
     name = fam.name
     if name == "binomial":
-        return (w * y + 0.5) / (w + 1.0)
-    if name in ("poisson", "negative_binomial", "tweedie"):
-        return y + 0.1
-    return fam.clip_mu(y.copy())
+        mu = (w * y + 0.5) / (w + 1.0)
+    elif name in ("poisson", "negative_binomial", "tweedie"):
+        mu = y + 0.1
+    else:
+        mu = fam.clip_mu(y.copy())
+    with np.errstate(all="ignore"):
+        bad = ~np.isfinite(link.link(mu))
+    if bad.any():
+        mu = np.where(bad, y_mean, mu)
+    return mu

@@ -39,7 +39,8 @@ class Model:
     criterion : ``"reml"`` (default), ``"gcv"``, ``"ubre"`` (known scale) or ``"fixed"``.
     missing : ``"error"`` (default) stops on NULL/NaN/inf in a used column; ``"drop"``
         leaves such rows out and reports how many.
-    max_iterations : cap on PIRLS data passes.
+    max_iterations : cap on PIRLS data passes; the last pass always evaluates the reported
+        coefficients, so non-gaussian fits use at least 2.
     tolerance : relative change of the penalized deviance that ends PIRLS.
     """
 

@@ -23,7 +23,8 @@ def summary_text(fit) -> str:
     crit = s["criterion"].upper() if s["criterion"] != "fixed" else "fixed smoothing"
     status = "converged" if s["converged"] else "NOT CONVERGED"
     passes = f"{s['passes']} data pass{'es' if s['passes'] != 1 else ''} after the profile"
-    fam = m.family.name + "".join(f", {k} {v:g}" for k, v in m.family.params().items())
+    fitted = s.get("family_parameters") or m.family.params()
+    fam = m.family.name + "".join(f", {k} {v:.4g}" for k, v in fitted.items() if v is not None)
     lines = [
         f"tallgam additive model · {fam} family, {m.link.name} link · {crit}",
         f"  response    {m.response}",

@@ -75,7 +75,9 @@ class FitResult:
         weight = sc["weight"]
         tss = sc["centred_ss"] - sc["centred_sum"] ** 2 / max(weight, 1e-300)
         dev, null = sc["deviance"], fs.null_deviance
-        p_scale = 0 if fs.model.family.scale_known else 1
+        fam = fs.family or fs.model.family
+        p_scale = (0 if fam.scale_known else 1) + (1 if fam.estimates_nuisance else 0) + (
+            1 if "power_profile" in fs.extra_statistics else 0)
         statistics = {
             "rows": int(n),
             "weight": weight,
@@ -93,6 +95,8 @@ class FitResult:
             "passes": int(fs.passes),
             "dropped_rows": int(fs.dropped_rows),
             "seconds": fs.seconds,
+            "family_parameters": fam.fitted_params(),
+            **fs.extra_statistics,
         }
         history = [vars(h) for h in fs.history]
         provenance = {"tallgam_version": __version__,

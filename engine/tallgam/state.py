@@ -36,7 +36,13 @@ SCALARS = (
     "null_deviance",  # Σ w d(y, μ₀) of the intercept-and-offset model at its anchor
     "null_weight",    # Σ W₀ of the null model's working weights
     "null_score",     # Σ W₀ r₀ of the null model's working residuals
+    "loglik_lo",      # the log-likelihood at φ·e^(−δ) and φ·e^(+δ), to interpolate it
+    "loglik_hi",      # to the final scale estimate (families whose density needs φ)
+    "nuisance_score",  # d loglik / d log θ of a family's extra parameter (e.g. NB θ)
+    "nuisance_info",  # its second derivative
+    "max_eta_change",  # max |η − η_previous| over rows (merged by max, not by sum)
 )
+MAX_SCALARS = frozenset({"max_eta_change"})
 
 
 @dataclass
@@ -67,7 +73,10 @@ class PassState:
         out = {}
         for f in fields(self):
             a, b = getattr(self, f.name), getattr(other, f.name)
-            if isinstance(a, dict):
+            if f.name == "scalars":
+                out[f.name] = {k: (max(a[k], b[k]) if k in MAX_SCALARS else a[k] + b[k])
+                               for k in a}
+            elif isinstance(a, dict):
                 out[f.name] = {k: a[k] + b[k] for k in a}
             else:
                 out[f.name] = a + b
@@ -128,7 +137,10 @@ class Accumulator:
 
     def add_scalars(self, **values: float) -> None:
         for k, v in values.items():
-            self.scalars[k] += float(v)
+            if k in MAX_SCALARS:
+                self.scalars[k] = max(self.scalars[k], float(v))
+            else:
+                self.scalars[k] += float(v)
 
     def finish(self) -> PassState:
         dense = _ordered_sum(self.dense)
