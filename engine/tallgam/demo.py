@@ -23,15 +23,17 @@ GROUPS = [f"G{i:03d}" for i in range(1, 501)]
 CHUNK = 500_000
 FILE_ROWS = 2_000_000
 
-_rng_regions = np.random.default_rng(20261201)
-REGION_FREQ = dict(zip(REGIONS, _rng_regions.normal(0.0, 0.15, len(REGIONS))))
-REGION_SEV = dict(zip(REGIONS, _rng_regions.normal(0.0, 0.08, len(REGIONS))))
-GROUP_FREQ = _rng_regions.normal(0.0, 0.1, len(GROUPS))
-FUEL_FREQ = {"petrol": 0.0, "diesel": 0.12, "electric": -0.08}
+_rng = np.random.default_rng(20261201)
+REGION_FREQ = _rng.normal(0.0, 0.15, len(REGIONS))   # log-frequency effect per region
+REGION_SEV = _rng.normal(0.0, 0.08, len(REGIONS))    # log-severity effect per region
+GROUP_FREQ = _rng.normal(0.0, 0.1, len(GROUPS))
+FUEL_FREQ = np.array([0.0, 0.12, -0.08])
+REGION_SHARE = np.linspace(2.0, 0.5, len(REGIONS)) / np.linspace(2.0, 0.5, len(REGIONS)).sum()
 
 
 def true_frequency_terms(cols: dict) -> dict[str, np.ndarray]:
-    """The log-frequency contributions of the invented truth (per policy-year)."""
+    """The log-frequency contributions of the invented truth (per policy-year); categorical
+    factors are given as level indices (``region``, ``fuel``, ``vehicle_group``)."""
     age = cols["driver_age"]
     vage = cols["vehicle_age"]
     return {
@@ -39,9 +41,9 @@ def true_frequency_terms(cols: dict) -> dict[str, np.ndarray]:
         "vehicle_age": -0.02 * vage + 0.15 * np.exp(-vage / 2.0),
         "bonus_level": 0.04 * cols["bonus_level"],
         "density": 0.12 * np.log(cols["density"] / 500.0),
-        "region": np.vectorize(REGION_FREQ.get)(cols["region"]),
-        "fuel": np.vectorize(FUEL_FREQ.get)(cols["fuel"]),
-        "vehicle_group": GROUP_FREQ[cols["group_index"]],
+        "region": REGION_FREQ[cols["region"]],
+        "fuel": FUEL_FREQ[cols["fuel"]],
+        "vehicle_group": GROUP_FREQ[cols["vehicle_group"]],
     }
 
 
@@ -52,7 +54,11 @@ def true_log_frequency(cols: dict) -> np.ndarray:
 def true_log_severity(cols: dict) -> np.ndarray:
     age = cols["driver_age"]
     return (7.4 + 0.2 * ((age - 50.0) / 30.0) ** 2 + 0.03 * cols["vehicle_power"]
-            + np.vectorize(REGION_SEV.get)(cols["region"]))
+            + REGION_SEV[cols["region"]])
+
+
+def _levels(indices: np.ndarray, labels: list[str]) -> pa.DictionaryArray:
+    return pa.DictionaryArray.from_arrays(pa.array(indices.astype(np.int32)), pa.array(labels))
 
 
 def _chunk(start: int, rows: int, seed: int) -> pa.Table:
@@ -68,25 +74,22 @@ def _chunk(start: int, rows: int, seed: int) -> pa.Table:
         "vehicle_power": rng.integers(4, 16, rows).astype(np.float64),
         "bonus_level": np.minimum(np.floor(rng.exponential(3.0, rows)), 22.0),
         "density": np.round(np.exp(rng.normal(6.0, 1.4, rows)), 1),
-        "region": rng.choice(REGIONS, rows, p=_region_weights()),
-        "fuel": rng.choice(FUELS, rows, p=[0.55, 0.38, 0.07]),
-        "group_index": np.minimum(rng.zipf(1.3, rows) - 1, len(GROUPS) - 1),
+        "region": rng.choice(len(REGIONS), rows, p=REGION_SHARE),
+        "fuel": rng.choice(len(FUELS), rows, p=[0.55, 0.38, 0.07]),
+        "vehicle_group": np.minimum(rng.zipf(1.3, rows) - 1, len(GROUPS) - 1),
     }
     lam = cols["exposure"] * np.exp(true_log_frequency(cols))
     counts = rng.poisson(lam)
     shape = 2.0
     mean_sev = np.exp(true_log_severity(cols))
     amounts = np.where(counts > 0, rng.gamma(shape * np.maximum(counts, 1), mean_sev / shape), 0.0)
-    out = {k: v for k, v in cols.items() if k != "group_index"}
-    out["vehicle_group"] = np.asarray(GROUPS)[cols["group_index"]]
+    out = dict(cols)
+    out["region"] = _levels(cols["region"], REGIONS)
+    out["fuel"] = _levels(cols["fuel"], FUELS)
+    out["vehicle_group"] = _levels(cols["vehicle_group"], GROUPS)
     out["claim_count"] = counts.astype(np.int32)
     out["claim_amount"] = np.round(amounts, 2)
     return pa.table(out)
-
-
-def _region_weights() -> np.ndarray:
-    w = np.linspace(2.0, 0.5, len(REGIONS))
-    return w / w.sum()
 
 
 def write_book(folder, rows: int, *, seed: int = 7, progress: Callable | None = None

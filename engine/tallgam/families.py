@@ -46,6 +46,10 @@ class Family:
         """Keep μ inside the family's open mean space (guards PIRLS steps)."""
         return mu
 
+    def valid_mu(self, mu: np.ndarray) -> np.ndarray:
+        """Which means lie in the family's mean space (a PIRLS step leaving it is halved)."""
+        return np.isfinite(mu)
+
     def deviance(self, y: np.ndarray, mu: np.ndarray, w: np.ndarray | None = None) -> float:
         d = self.unit_deviance(y, mu)
         return float(np.sum(d if w is None else w * d))
@@ -128,6 +132,9 @@ class Poisson(Family):
     def clip_mu(self, mu):
         return np.maximum(mu, _EPS)
 
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0)
+
 
 class Binomial(Family):
     """Response a 0/1 outcome or a proportion; prior weights are the numbers of trials."""
@@ -152,6 +159,9 @@ class Binomial(Family):
     def clip_mu(self, mu):
         return np.clip(mu, _EPS, 1.0 - _EPS)
 
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0) & (mu < 1)
+
 
 class Gamma(Family):
     name = "gamma"
@@ -174,6 +184,9 @@ class Gamma(Family):
     def clip_mu(self, mu):
         return np.maximum(mu, _EPS)
 
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0)
+
 
 class InverseGaussian(Family):
     name = "inverse_gaussian"
@@ -193,6 +206,9 @@ class InverseGaussian(Family):
 
     def clip_mu(self, mu):
         return np.maximum(mu, _EPS)
+
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0)
 
 
 class Tweedie(Family):
@@ -254,6 +270,9 @@ class Tweedie(Family):
 
     def clip_mu(self, mu):
         return np.maximum(mu, _EPS)
+
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0)
 
 
 class NegativeBinomial(Family):
@@ -322,6 +341,9 @@ class NegativeBinomial(Family):
 
     def clip_mu(self, mu):
         return np.maximum(mu, _EPS)
+
+    def valid_mu(self, mu):
+        return np.isfinite(mu) & (mu > 0)
 
 
 FAMILIES: dict[str, type[Family]] = {

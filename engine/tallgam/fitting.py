@@ -190,12 +190,13 @@ class PassRecord:
     """One data pass of the fit, for the history."""
 
     number: int
-    kind: str                 # "start", "step", "halved"
+    kind: str                 # "start", "step", "halved", "exact", "loglik"
     deviance: float
     penalized_deviance: float
     smoothing: list[float]
     seconds: float
     rows: int
+    invalid_rows: int = 0     # rows whose mean left the family's range (a halving cause)
 
 
 @dataclass
@@ -327,6 +328,7 @@ class _Run:
         self.null_beta0 = self.start_shift
         self.scale_est = 1.0
         self.passes = 0
+        self.extra_records: list[PassRecord] = []
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
@@ -335,53 +337,74 @@ class _Run:
         return state
 
     def iterate(self, dropped: int) -> FitState:
+        """Data passes until the penalized deviance and the linear predictor settle.
+
+        Every pass evaluates one iterate. A step is *worse* when it puts a mean outside
+        the family's range (e.g. a negative Poisson mean under the identity link) or raises
+        the penalized deviance at the current λ; a worse step is halved towards the last
+        accepted iterate. If halving cannot find a better point, the fit stops at the last
+        accepted iterate and says it did not converge.
+        """
         model, design = self.model, self.design
         scale_known = self.fam.scale_known
         exact = self.fam.name == "gaussian" and self.link.name == "identity"
         history: list[PassRecord] = []
         constraints: Constraints | None = None
-        beta = None            # current iterate (raw); None before the first solve
-        beta_prev = None       # the iterate before it, with its deviance from its own pass
-        prev_dev = None
+        beta = None            # the iterate this pass evaluates; None: the starting means
+        accepted = None        # (beta, state, deviance, λ) of the last accepted iterate
         lam = rho = None
         halvings = 0
-        converged = False
+        converged = stuck = False
         nuisance_moved = False
         last: Solution | None = None
         notes: list[str] = []
         while True:
             t_pass = time.perf_counter()
-            state = self.data_pass(beta, beta_prev)
+            state = self.data_pass(beta, accepted[0] if accepted else None)
             if constraints is None:
                 constraints = Constraints(design, state.colsum)
             dev = state.scalars["deviance"]
             rows = int(state.scalars["rows"])
-            if beta is not None:  # this pass evaluated beta
+            if beta is None:
+                history.append(PassRecord(self.passes, "start", dev, dev, [],
+                                          time.perf_counter() - t_pass, rows))
+            else:
                 # deviances of two passes compare only if the family's parameters were equal
                 comparable = not nuisance_moved
                 nuisance_moved = self._update_nuisance(state)
-                S = _raw_penalty(constraints, lam)
-                pdev = dev + beta @ S @ beta
+                pdev = dev + _penalty_value(constraints, lam, beta)
                 record = PassRecord(self.passes, "step", dev, pdev, list(lam),
-                                    time.perf_counter() - t_pass, rows)
-                if beta_prev is not None and prev_dev is not None and comparable:
-                    prev_pdev = prev_dev + beta_prev @ S @ beta_prev
-                    if (pdev > prev_pdev * (1 + 1e-9) + 1e-12 and halvings < 25
-                            and self.passes < model.max_iterations):
-                        halvings += 1
-                        record.kind = "halved"
-                        history.append(record)
-                        beta = 0.5 * (beta + beta_prev)
-                        continue
-                    if (abs(pdev - prev_pdev) <= model.tolerance * (abs(pdev) + 1e-3)
-                            and state.scalars["max_eta_change"] <= ETA_TOLERANCE):
-                        history.append(record)
-                        converged = True
-                        break
-                if self.passes >= model.max_iterations:
+                                    time.perf_counter() - t_pass, rows,
+                                    int(state.scalars["invalid_rows"]))
+                invalid = state.scalars["invalid_rows"] > 0
+                prev_pdev = np.inf
+                if accepted is not None and accepted[2] is not None:
+                    prev_pdev = accepted[2] + _penalty_value(constraints, lam, accepted[0])
+                rise = comparable and pdev - prev_pdev > 1e-9 * abs(prev_pdev) + 1e-12
+                if (invalid or rise) and accepted is not None:
+                    record.kind = "halved"
                     history.append(record)
+                    if halvings < 25 and self.passes < model.max_iterations:
+                        halvings += 1
+                        beta = 0.5 * (beta + accepted[0])
+                        continue
+                    stuck = True
+                    if accepted[1] is None:
+                        raise FitError(
+                            f"PIRLS found no coefficients giving valid means for the "
+                            f"{self.fam.name} family with the {self.link.name} link "
+                            f"({int(state.scalars['invalid_rows'])} rows outside the range); "
+                            "use the family's default link")
+                    beta, state, _, lam = accepted
                     break
                 history.append(record)
+                if (accepted is not None and comparable and abs(pdev - prev_pdev)
+                        <= model.tolerance * (abs(pdev) + 1e-3)
+                        and state.scalars["max_eta_change"] <= ETA_TOLERANCE):
+                    converged = True
+                    break
+                if self.passes >= model.max_iterations:
+                    break
             halvings = 0
             anchor = beta if beta is not None else _intercept_only(design, self.start_shift)
             problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
@@ -391,13 +414,16 @@ class _Run:
             notes.extend(n for n in sol.notes if n not in notes)
             last = sol
             rho = _rho_of(sol.lam, problem, constraints)
-            beta_prev, prev_dev = beta, (dev if beta is not None else None)
+            # the iterate just evaluated becomes the anchor of halving; before the first
+            # solve that is the intercept-only start (valid means, deviance not evaluated)
+            accepted = (anchor, state if beta is not None else None,
+                        dev if beta is not None else None, lam)
             beta = constraints.to_raw(sol.gamma)
             lam = sol.lam
             self.scale_est = _scale_estimate(state, sol, scale_known, exact)
             if exact:
-                history.append(PassRecord(self.passes, "exact", dev, dev, list(lam),
-                                          time.perf_counter() - t_pass, rows))
+                history[-1].kind = "exact"
+                history[-1].smoothing = list(lam)
                 converged = True
                 break
         if exact:
@@ -405,10 +431,13 @@ class _Run:
         else:
             solution = _final_solution(constraints, state, beta, lam, last)
         if not converged:
-            msg = (f"PIRLS did not converge in {self.passes} data passes (relative change of "
-                   f"the penalized deviance above {model.tolerance:g}); the estimates and "
-                   "statistics are those of the last pass. Raise max_iterations or check the "
-                   "model.")
+            why = ("step halving found no better coefficients; the fit stopped at the last "
+                   "accepted iterate" if stuck else
+                   f"the relative change of the penalized deviance stayed above "
+                   f"{model.tolerance:g}")
+            msg = (f"PIRLS did not converge in {self.passes} data passes ({why}); the estimates "
+                   "and statistics are those of the reported iterate. Raise max_iterations or "
+                   "check the model.")
             warnings.warn(ConvergenceWarning(msg), stacklevel=4)
         return self._finish(state, beta, solution, constraints, converged, history, notes,
                             dropped, exact)
@@ -456,7 +485,8 @@ class _Run:
             sc["response_ss"] = sc["pearson"] = deviance
         fs = FitState(model=self.model, design=self.design, constraints=constraints,
                       profile=self.profile, beta=beta, solution=solution, state=state,
-                      scale=scale, converged=converged, passes=self.passes, history=history,
+                      scale=scale, converged=converged, passes=self.passes,
+                      history=history + self.extra_records,
                       null_deviance=null_dev, loglik=loglik, notes=notes, dropped_rows=dropped,
                       seconds=0.0, expressions=resolved_expressions(self.inputs), family=fam)
         return fs
@@ -494,16 +524,19 @@ def _rho_of(lam, problem, constraints) -> np.ndarray:
     return np.clip(np.log(np.maximum(lam, 1e-300) / base), -RHO_BOUND, RHO_BOUND)
 
 
-def _raw_penalty(constraints: Constraints, lam) -> np.ndarray:
-    """S_λ in raw coordinates (p × p)."""
-    p = constraints.Z.shape[0]
+def _penalty_value(constraints: Constraints, lam, beta: np.ndarray) -> float:
+    """βᵀS_λβ, formed block by block in free coordinates, where each single penalty is
+    diagonal: a sum of non-negative terms, accurate even when λ is near its bound (the
+    same product in raw coordinates cancels to a few digits)."""
     if lam is None or len(lam) == 0:
-        return np.zeros((p, p))
-    S_free = np.zeros((constraints.n_free, constraints.n_free))
+        return 0.0
+    gamma = constraints.to_free(beta)
+    total = 0.0
     for blk in constraints.blocks:
+        g = gamma[blk.sl]
         for j, m in enumerate(blk.matrices):
-            S_free[blk.sl, blk.sl] += lam[blk.first + j] * m
-    return constraints.Z @ S_free @ constraints.Z.T
+            total += lam[blk.first + j] * float(g @ m @ g)
+    return total
 
 
 def _scale_estimate(state, sol, scale_known, exact) -> float:
@@ -580,7 +613,10 @@ def _data_pass(run: _Run, beta, beta_prev) -> PassState:
                 fitted = np.zeros(m)
                 kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, fitted)
                 eta = fitted + o
-                mu = fam.clip_mu(link.inverse(eta))
+                with np.errstate(all="ignore"):
+                    mu = link.inverse(eta)
+                    extra["invalid_rows"] = np.count_nonzero(~fam.valid_mu(mu))
+                mu = fam.clip_mu(mu)
                 base = None
                 if beta_prev is not None:
                     change = np.zeros(m)
@@ -635,6 +671,7 @@ def _loglik_pass(run: _Run, beta, scale: float) -> float:
     run.passes += 1
     task = f"pass {run.passes}"
     run.callback(Event("start", task, total=run.profile.rows, message="log-likelihood"))
+    t0 = time.perf_counter()
     total = 0.0
     done = 0
     for batch in run.source.batches(inputs.select, inputs.where, run.batch_rows):
@@ -648,6 +685,8 @@ def _loglik_pass(run: _Run, beta, scale: float) -> float:
         done += batch.num_rows
         run.callback(Event("advance", task, rows=done, total=run.profile.rows))
     run.callback(Event("end", task, rows=done, total=run.profile.rows))
+    run.extra_records.append(PassRecord(run.passes, "loglik", float("nan"), float("nan"), [],
+                                        time.perf_counter() - t0, done))
     return total
 
 

@@ -40,6 +40,7 @@ SCALARS = (
     "loglik_hi",      # to the final scale estimate (families whose density needs φ)
     "nuisance_score",  # d loglik / d log θ of a family's extra parameter (e.g. NB θ)
     "nuisance_info",  # its second derivative
+    "invalid_rows",   # rows whose mean falls outside the family's range at the anchor
     "max_eta_change",  # max |η − η_previous| over rows (merged by max, not by sum)
 )
 MAX_SCALARS = frozenset({"max_eta_change"})
