@@ -21,7 +21,7 @@ from .model import Model
 from .modelfile import load
 from .result import FitResult
 from .sources import sql
-from .terms import categorical, linear, spline
+from .terms import adjacency, categorical, cyclic, linear, random_effect, spline, surface
 
 __version__ = "0.1.0"
 
@@ -36,11 +36,15 @@ __all__ = [
     "SpecError",
     "TallgamError",
     "TallgamWarning",
+    "adjacency",
     "categorical",
+    "cyclic",
     "get_family",
     "get_link",
     "linear",
     "load",
+    "random_effect",
     "spline",
     "sql",
+    "surface",
 ]

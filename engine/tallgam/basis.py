@@ -139,14 +139,17 @@ def dense_matrix(knots: np.ndarray, x: np.ndarray) -> np.ndarray:
     return out
 
 
-def curvature_penalty(knots: np.ndarray) -> np.ndarray:
-    """S with S[i, j] = ∫ B_i''(x) B_j''(x) dx over the knot range, exactly.
+def curvature_penalty(knots: np.ndarray, lo: float | None = None,
+                      hi: float | None = None) -> np.ndarray:
+    """S with S[i, j] = ∫ B_i''(x) B_j''(x) dx over [lo, hi] (default: the knot range).
 
     B'' is piecewise linear, so two-point Gauss–Legendre per knot interval is exact.
     Units: 1 / (x units)^3 times coefficient units squared.
     """
     size = len(knots) - ORDER
     breaks = np.unique(knots)
+    if lo is not None:
+        breaks = breaks[(breaks >= lo) & (breaks <= hi)]
     gx, gw = np.polynomial.legendre.leggauss(2)
     a, b = breaks[:-1], breaks[1:]
     half = 0.5 * (b - a)
@@ -162,3 +165,33 @@ def difference_penalty(size: int, order: int = 2) -> np.ndarray:
     """P-spline penalty DᵀD with D the ``order``-th difference matrix (Eilers & Marx 1996)."""
     d = np.diff(np.eye(size), n=order, axis=0)
     return d.T @ d
+
+
+def periodic_knots(breaks: np.ndarray, period: float) -> np.ndarray:
+    """Extended knot vector for a periodic cubic basis on one period.
+
+    ``breaks`` are the k + 1 knots τ₀ < … < τ_k = τ₀ + period. The vector continues the
+    spacing periodically by three knots at each end, giving k + 3 ordinary cubic
+    B-splines on [τ₀, τ_k]; functions i and i + k are then the same periodic function,
+    which :func:`periodic_fold` exploits.
+    """
+    b = np.asarray(breaks, dtype=np.float64)
+    k = len(b) - 1
+    return np.concatenate([b[k - 3:k] - period, b, b[1:4] + period])
+
+
+def periodic_fold(k: int) -> np.ndarray:
+    """The (k + 3) × k matrix summing extended basis function i into column i mod k."""
+    w = np.zeros((k + 3, k))
+    w[np.arange(k + 3), np.arange(k + 3) % k] = 1.0
+    return w
+
+
+def evaluate_periodic(knots: np.ndarray, period: float, x: np.ndarray
+                      ) -> tuple[np.ndarray, np.ndarray]:
+    """Like :func:`evaluate` for a periodic basis of k = len(knots) − 7 functions: x is
+    first wrapped into [τ₀, τ₀ + period). Returns ``first`` (before wrapping the column
+    index: columns are (first + a) mod k) and the four values."""
+    origin = knots[3]
+    xw = origin + np.mod(np.asarray(x, dtype=np.float64) - origin, period)
+    return evaluate(knots, xw)

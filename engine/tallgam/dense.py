@@ -28,6 +28,10 @@ class Constraints:
         zs, penalties = [], []
         for b, sl in zip(design.bases, design.slices):
             z, mats = penalty_coordinates(b.constraint(colsum[sl]), b.penalties())
+            if b.selection and mats:  # Marra & Wood (2011): penalize the null space too
+                null = np.all(sum(np.abs(m) for m in mats) == 0, axis=0)
+                if null.any():
+                    mats = mats + [np.diag(null.astype(np.float64))]
             zs.append(z)
             penalties.append(mats)
         self.Z = linalg.block_diag(*zs) if zs else np.zeros((0, 0))
@@ -50,7 +54,8 @@ class Constraints:
             if not mats:
                 continue
             self.blocks.append(PenaltyBlock(sl=fsl, matrices=mats, first=first))
-            self.fixed.extend(b.fixed_smoothing())
+            fixed = b.fixed_smoothing()
+            self.fixed.extend(fixed + [None] * (len(mats) - len(fixed)))
             self.penalty_owner.extend([j] * len(mats))
             first += len(mats)
 

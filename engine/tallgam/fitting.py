@@ -78,8 +78,7 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
     """Resolve the model's columns and expressions against ``source``."""
     columns: dict[str, str] = {}  # column -> "numeric" | "levels"
     for spec in design_specs:
-        for c in spec.inputs:
-            columns[c] = "levels" if spec.kind == "categorical" else "numeric"
+        columns.update(spec.input_kinds())
     source.require_columns(list(columns))
     for c, kind in columns.items():
         typ = source.schema[c].upper()

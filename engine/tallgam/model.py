@@ -83,12 +83,19 @@ class Model:
         dup = {lab for lab in labels if labels.count(lab) > 1}
         if dup:
             raise SpecError(f"terms given twice: {', '.join(sorted(dup))}")
-        numeric = {c for t in self.terms if t.kind != "categorical" for c in t.inputs}
-        levels = {c for t in self.terms if t.kind == "categorical" for c in t.inputs}
+        kinds = [(c, k) for t in self.terms for c, k in t.input_kinds().items()]
+        numeric = {c for c, k in kinds if k == "numeric"}
+        levels = {c for c, k in kinds if k == "levels"}
         both = numeric & levels
         if both:
             raise SpecError(f"column(s) {', '.join(sorted(both))} used both as numeric and as "
-                            "categorical; derive a copy with SQL for one of the uses")
+                            "levels; derive a copy with SQL for one of the uses")
+        level_terms = {t.column for t in self.terms if t.kind in ("categorical",)}
+        for t in self.terms:
+            per = getattr(t, "per", None)
+            if per and per not in level_terms:
+                raise SpecError(f"{t.label} needs the level means too: add "
+                                f"tg.categorical({per!r}) to the terms")
         if not (self.max_iterations >= 1):
             raise SpecError("max_iterations must be at least 1")
 

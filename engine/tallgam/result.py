@@ -13,12 +13,11 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
-from . import basis as bs
 from .design import Design
 from .errors import SpecError
 from .model import Model
 from .sources import open_source
-from .terms import Basis, CategoricalBasis, LinearBasis, SplineBasis
+from .terms import Basis, InterceptBasis, LevelBasis, LinearBasis
 
 
 class FitResult:
@@ -179,12 +178,12 @@ class FitResult:
             if isinstance(b, LinearBasis):
                 e, s = e / b.scale, s / b.scale
                 labels = [b.spec.column]
-            elif isinstance(b, CategoricalBasis):
+            elif isinstance(b, LevelBasis):
                 labels = list(b.levels)
-            elif isinstance(b, SplineBasis):
-                labels = [f"basis {i + 1}" for i in range(b.n_raw)]
-            else:
+            elif isinstance(b, InterceptBasis):
                 labels = ["(intercept)"]
+            else:
+                labels = [f"basis {i + 1}" for i in range(b.n_raw)]
             terms += [b.label] * len(labels)
             names += labels
             est += list(e)
@@ -243,36 +242,27 @@ class FitResult:
     def effect(self, term: str, *, points: int = 200, level: float = 0.95) -> pa.Table:
         """A term's estimated effect with pointwise Bayesian bands.
 
-        Splines and linear terms: ``points`` values of the column across the training
-        range; categoricals: every level. Columns: the term's column, ``estimate``,
-        ``std_error``, ``lower``, ``upper`` on the link scale, and for the log link
+        Smooth and linear terms: ``points`` values across the training range (a grid of up
+        to 50 per axis for surfaces; every level for per-level curves); level terms: every
+        level. Columns: the term's input columns, ``estimate``, ``std_error``, ``lower``,
+        ``upper`` on the link scale (centred as in the fit), and for the log link
         ``relativity`` = exp(estimate) with its bounds.
         """
+        from .terms import term_matrix
+
         b, sl = self.term(term)
+        ranges = {k.split(":", 1)[1]: (v["min"], v["max"])
+                  for k, v in self.profile.get("columns", {}).items()
+                  if k.startswith("num:") and v.get("min") is not None}
+        grid = b.effect_grid(points, ranges)
+        X = term_matrix(b, grid)
         beta = self.coefficients_raw[sl]
         cov = self.covariance_raw[sl, sl]
-        if isinstance(b, SplineBasis):
-            lo, hi = b.range
-            x = np.linspace(lo, hi, points)
-            X = bs.dense_matrix(b.knots, x)
-            key = b.spec.column
-        elif isinstance(b, LinearBasis):
-            fp = self.profile["columns"].get(f"num:{b.spec.column}", {})
-            x = np.linspace(fp.get("min", b.centre - 2 * b.scale),
-                            fp.get("max", b.centre + 2 * b.scale), points)
-            X = ((x - b.centre) / b.scale)[:, None]
-            key = b.spec.column
-        elif isinstance(b, CategoricalBasis):
-            x = np.array(b.levels, dtype=object)
-            X = np.eye(b.n_raw)
-            key = b.spec.column
-        else:
-            raise SpecError(f"term {term!r} has no effect curve")
         est = X @ beta
         se = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", X, cov, X), 0.0))
         z = stats.norm.ppf(0.5 + level / 2.0)
-        cols = {key: x.tolist() if x.dtype == object else x, "estimate": est, "std_error": se,
-                "lower": est - z * se, "upper": est + z * se}
+        cols = dict(grid)
+        cols.update(estimate=est, std_error=se, lower=est - z * se, upper=est + z * se)
         if self.model.link.name == "log":
             cols.update(relativity=np.exp(est), relativity_lower=np.exp(est - z * se),
                         relativity_upper=np.exp(est + z * se))

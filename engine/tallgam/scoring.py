@@ -22,7 +22,6 @@ from .design import Design, batch_columns
 from .errors import DataError, SpecError, TallgamWarning
 from .fitting import O, model_inputs
 from .sources import Source, quote
-from .terms import CategoricalBasis, SplineBasis
 
 OUTPUTS = ("response", "link", "terms")
 UNSEEN = ("error", "base")
@@ -122,38 +121,42 @@ class Scorer:
             parts[b.label][sl] = seg
 
     def _check(self, cols: dict, n: int) -> None:
+        """Stop on NULL/NaN in a used column or on unseen levels (unless unseen='base');
+        count the rows whose values are clamped to a training range."""
         for b in self.design.bases:
-            if isinstance(b, SplineBasis):
-                x = cols[b.spec.column]
-                lo, hi = b.range
+            ranges = b.clamp_ranges()
+            for c, kind in b.spec.input_kinds().items() if b.inputs else ():
+                if kind != "numeric":
+                    continue
+                x = cols[c]
                 bad = np.count_nonzero(~np.isfinite(x))
                 if bad:
-                    raise DataError(f"column {b.spec.column!r} has {bad} NULL/NaN/inf value(s) "
-                                    "in the data to score; fill or filter them first")
-                outside = np.count_nonzero((x < lo) | (x > hi))
-                if outside:
-                    self.report.clamped[b.spec.column] += outside
-            elif isinstance(b, CategoricalBasis):
-                arr = cols[b.spec.column]
-                codes = b.codes(cols)
-                missing = codes < 0
+                    raise DataError(f"column {c!r} has {bad} NULL/NaN/inf value(s) in a batch "
+                                    f"of {n} rows to score; fill or filter them first")
+                if c in ranges:
+                    lo, hi = ranges[c]
+                    outside = np.count_nonzero((x < lo) | (x > hi))
+                    if outside:
+                        self.report.clamped[c] += outside
+            for c, levels in b.level_sets().items():
+                arr = cols[c]
+                missing = _unknown(arr, levels)
                 if missing.any():
                     if self.unseen == "error":
                         ex = pc.unique(arr.filter(pa.array(missing))).to_pylist()[:5]
                         raise DataError(
                             f"{int(missing.sum())} row(s) in a batch of {n} have levels of "
-                            f"{b.spec.column!r} not seen in training (e.g. {ex}); pass "
-                            "unseen='base' to give them the base level's effect")
-                    self.report.unseen[b.spec.column] += int(missing.sum())
-            else:
-                for c in b.inputs:
-                    x = cols[c]
-                    if isinstance(x, np.ndarray) and not np.all(np.isfinite(x)):
-                        raise DataError(f"column {c!r} has NULL/NaN/inf values in the data "
-                                        "to score; fill or filter them first")
+                            f"{c!r} not seen in training (e.g. {ex}); pass unseen='base' to "
+                            "give them the base level's effect (zero)")
+                    self.report.unseen[c] += int(missing.sum())
         if O in cols and not np.all(np.isfinite(cols[O])):
             raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
                             "rows of the data to score")
+
+
+def _unknown(arr, levels: list[str]) -> np.ndarray:
+    found = pc.is_in(arr, value_set=pa.array(levels, type=pa.string()))
+    return ~found.fill_null(False).to_numpy(zero_copy_only=False)
 
 
 def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str] = (),

@@ -47,8 +47,10 @@ RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
 }
 TERM_TYPES: dict[str, tuple] = {
-    "kind": (str,), "column": (str,), "size": (int,), "knots": (str, list),
-    "penalty": (str,), "smoothing": _NUMBER, "base": (str, int),
+    "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
+    "knots": (str, list), "penalty": (str,), "smoothing": (int, float, list),
+    "base": (str, int), "per": (str,), "multiplier": (str,), "select": (bool,),
+    "period": _NUMBER, "origin": _NUMBER, "neighbours": (str, dict),
 }
 
 
@@ -69,7 +71,8 @@ def _check_type(where: str, key: str, value, types: tuple) -> None:
     ok = isinstance(value, types) and not (isinstance(value, bool) and bool not in types)
     if not ok:
         names = " or ".join("number" if t is float else {str: "string", int: "integer",
-                                                          list: "list", dict: "table"}[t]
+                                                          list: "list", dict: "table",
+                                                          bool: "true/false"}[t]
                             for t in types if t is not int or float not in types)
         raise SpecError(f"{where}: key {key!r} must be a {names}, got {value!r}")
 
@@ -96,12 +99,19 @@ def parse_term(table: dict, index: int) -> object:
                             f"valid keys are {', '.join(sorted(allowed))}")
         if key in TERM_TYPES:
             _check_type(where, key, value, TERM_TYPES[key])
-    if "column" not in table:
-        raise SpecError(f"{where} ({kind}) needs a 'column'")
+    needed = "columns" if kind == "surface" else "column"
+    if needed not in table:
+        raise SpecError(f"{where} ({kind}) needs {needed!r}")
     args = {k: v for k, v in table.items() if k != "kind"}
+    for key in ("columns", "size", "smoothing"):
+        if isinstance(args.get(key), list):
+            args[key] = tuple(args[key])
     if "base" in args:
         args["base"] = str(args["base"])
-    return SPECS[kind](**args)
+    try:
+        return SPECS[kind](**args)
+    except TypeError as exc:
+        raise SpecError(f"{where} ({kind}): {exc}") from None
 
 
 def parse_spec(text: str, path: str | None = None) -> RunSpec:
