@@ -42,16 +42,18 @@ def summary_text(fit) -> str:
         f"  rows        {s['rows']:,}{dropped}",
         f"  iterations  {passes}, {status}",
         "",
-        f"  {'term':<32}{'columns':>8}{'EDF':>9}{'smoothing λ':>14}",
+        f"  {'term':<32}{'columns':>8}{'EDF':>9}  {'smoothing λ':<22}",
     ]
     for b, sl in zip(fit.bases, fit.design.slices):
         lam = fit.smoothing.get(b.label)
-        if isinstance(lam, list):
+        if isinstance(lam, list) and len(lam) > 2:
+            lam_s = f"{len(lam)}: {_num(min(lam), 2)}–{_num(max(lam), 2)}"
+        elif isinstance(lam, list):
             lam_s = "/".join(_num(v, 3) for v in lam)
         else:
             lam_s = _num(lam, 3) if lam is not None else "–"
         lines.append(f"  {b.label:<32}{sl.stop - sl.start:>8}{fit.edf.get(b.label, 0):>9.2f}"
-                     f"{lam_s:>14}")
+                     f"  {lam_s:<22}".rstrip())
     lines.append(f"  {'all terms':<32}{fit.design.p:>8}{fit.edf['total']:>9.2f}")
     coef = fit.coefficients
     shown = [i for i, t in enumerate(coef["term"].to_pylist())

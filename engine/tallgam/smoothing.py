@@ -45,34 +45,74 @@ def null_eigenvalues(vals: np.ndarray) -> np.ndarray:
 
 @dataclass
 class PenaltyBlock:
-    """The penalties of one term, on coefficients ``sl`` (constrained coordinates)."""
+    """The penalties of one term, on coefficients ``sl`` (constrained coordinates).
+
+    Penalties whose supports do not overlap (one penalty; one per level of a per-level
+    curve; a selection penalty beside the curvature one) have the closed form
+    log|λS|₊ = rank·log λ + log|S|₊. Overlapping ones (the margins of a surface) are
+    grouped and their log-determinant is taken by an eigendecomposition on the group's
+    range space.
+    """
 
     sl: slice
     matrices: list[np.ndarray]          # each (k × k), k = sl.stop - sl.start
     first: int                          # index of its first penalty in the global list
-    range_basis: np.ndarray = None      # orthonormal basis of the range of Σ S_k
     rank: int = 0
 
     def __post_init__(self):
-        total = sum(m / max(np.abs(m).max(), 1e-300) for m in self.matrices)
-        vals, vecs = np.linalg.eigh(0.5 * (total + total.T))
-        keep = ~null_eigenvalues(vals)
-        self.range_basis = vecs[:, keep]
-        self.rank = int(keep.sum())
-        self._reduced = [self.range_basis.T @ m @ self.range_basis for m in self.matrices]
-
-    def logdet(self, lam: np.ndarray) -> tuple[float, np.ndarray]:
-        """log|Σλ_k S_k|₊ over this block and its derivative w.r.t. log λ_k."""
         k = len(self.matrices)
-        if self.rank == 0:
-            return 0.0, np.zeros(k)
+        support = [np.any(m != 0, axis=0) for m in self.matrices]
+        # group penalties whose supports overlap (union-find on a handful of items)
+        group = list(range(k))
+        for i in range(k):
+            for j in range(i + 1, k):
+                if np.any(support[i] & support[j]):
+                    gi, gj = group[i], group[j]
+                    group = [gi if g == gj else g for g in group]
+        self.groups: list[list[int]] = [[i for i in range(k) if group[i] == g]
+                                        for g in dict.fromkeys(group)]
+        self._closed: dict[int, tuple[int, float]] = {}  # penalty -> (rank, log|S|₊)
+        self._general: list[tuple[list[int], list[np.ndarray]]] = []
+        self.rank = 0
+        for members in self.groups:
+            if len(members) == 1:
+                m = self.matrices[members[0]]
+                vals = np.linalg.eigvalsh(0.5 * (m + m.T))
+                pos = vals[~null_eigenvalues(vals)] if vals.size else vals
+                self._closed[members[0]] = (len(pos), float(np.sum(np.log(pos))))
+                self.rank += len(pos)
+            else:
+                mats = [self.matrices[i] for i in members]
+                total = sum(m / max(np.abs(m).max(), 1e-300) for m in mats)
+                vals, vecs = np.linalg.eigh(0.5 * (total + total.T))
+                basis = vecs[:, ~null_eigenvalues(vals)]
+                self._general.append((members, [basis.T @ m @ basis for m in mats]))
+                self.rank += basis.shape[1]
+
+    def logdet(self, lam: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        """log|Σλ_k S_k|₊ over this block, with its gradient and Hessian in log λ_k."""
+        k = len(self.matrices)
         lam_b = lam[self.first:self.first + k]
-        m = sum(lk * r for lk, r in zip(lam_b, self._reduced))
-        vals, vecs = np.linalg.eigh(0.5 * (m + m.T))
-        vals = np.maximum(vals, 1e-300)
-        inv = (vecs / vals) @ vecs.T
-        grad = np.array([lk * np.sum(inv * r) for lk, r in zip(lam_b, self._reduced)])
-        return float(np.sum(np.log(vals))), grad
+        value = 0.0
+        grad = np.zeros(k)
+        hess = np.zeros((k, k))
+        for i, (rank, const) in self._closed.items():
+            value += rank * np.log(max(lam_b[i], 1e-300)) + const
+            grad[i] = rank
+        for members, reduced in self._general:
+            m = sum(lam_b[i] * r for i, r in zip(members, reduced))
+            vals, vecs = np.linalg.eigh(0.5 * (m + m.T))
+            vals = np.maximum(vals, 1e-300)
+            inv = (vecs / vals) @ vecs.T
+            value += float(np.sum(np.log(vals)))
+            prods = [inv @ r for r in reduced]
+            for a, i in enumerate(members):
+                t = lam_b[i] * np.trace(prods[a])
+                grad[i] = t
+                hess[i, i] += t
+                for b, j in enumerate(members):
+                    hess[i, j] -= lam_b[i] * lam_b[j] * np.sum(prods[a] * prods[b].T)
+        return value, grad, hess
 
 
 @dataclass
@@ -157,9 +197,7 @@ def solve(problem: WorkingProblem, lam: np.ndarray) -> Solution:
     dev = float(problem.e - 2.0 * delta @ u + delta @ A @ delta)
     dev = max(dev, 0.0)
     pen = float(gamma @ S @ gamma)
-    log_det_S = 0.0
-    for blk in problem.blocks:
-        log_det_S += blk.logdet(lam)[0]
+    log_det_S = sum(blk.logdet(lam)[0] for blk in problem.blocks)
     edf = np.einsum("ij,ji->i", H_inv, A)
     return Solution(lam=lam, gamma=gamma, H_inv=H_inv, deviance=dev, penalized=dev + pen,
                     edf=edf, log_det_H=log_det_H, log_det_S=log_det_S)
@@ -193,25 +231,10 @@ class _Criterion:
         k_all = prob.n_penalties
         grad = np.zeros(k_all)
         if self.name == "reml":
-            m0 = prob.null_dim
-            ld_grad = np.zeros(k_all)
-            for blk in prob.blocks:
-                ld_grad[blk.first:blk.first + len(blk.matrices)] = blk.logdet(lam)[1]
-            if self.scale is None:
-                nm = n - m0
-                dp = max(sol.penalized, 1e-300)
-                phi = dp / nm
-                value = 0.5 * nm * (1.0 + np.log(2 * np.pi * phi))
-                dfac = nm / (2.0 * dp)
-            else:
-                phi = self.scale
-                value = sol.penalized / (2 * phi) + 0.5 * (n - m0) * np.log(2 * np.pi * phi)
-                dfac = 1.0 / (2.0 * phi)
-            value += 0.5 * sol.log_det_H - 0.5 * sol.log_det_S
-            for j, (sl, m) in enumerate(prob.penalty_list()):
-                gs = g[sl]
-                grad[j] = (dfac * lam[j] * gs @ m @ gs
-                           + 0.5 * lam[j] * np.sum(Hi[sl, sl] * m) - 0.5 * ld_grad[j])
+            value, grad, hess = self._reml(sol, lam)
+            sol.criterion, sol.criterion_name = float(value), self.name
+            self.last_hessian = hess[np.ix_(self.free, self.free)]
+            return float(value), grad[self.free], sol
         else:
             tau = float(np.sum(sol.edf))
             S = prob.penalty(lam)
@@ -234,7 +257,59 @@ class _Criterion:
                     grad[j] = d_dev / n + 2.0 * self.gf * self.scale * d_tau / n
         sol.criterion = float(value)
         sol.criterion_name = self.name
+        self.last_hessian = None
         return float(value), grad[self.free], sol
+
+    def _reml(self, sol: Solution, lam: np.ndarray):
+        """REML value, gradient and exact Hessian in ρ = log λ (Wood 2011, §3–4):
+        ∂D_p/∂ρ_j = λ_j γ̂ᵀS_jγ̂ (envelope theorem), ∂γ̂/∂ρ_j = −λ_j H⁻¹S_jγ̂,
+        ∂log|H|/∂ρ_j = λ_j tr(H⁻¹S_j), ∂²log|H| = δ_ij λ_j tr(H⁻¹S_j) − λ_iλ_j tr(H⁻¹S_iH⁻¹S_j).
+        """
+        prob = self.p
+        g, Hi = sol.gamma, sol.H_inv
+        pens = prob.penalty_list()
+        k = len(pens)
+        n, m0 = prob.n, prob.null_dim
+        ld_val = 0.0
+        ld_grad = np.zeros(k)
+        ld_hess = np.zeros((k, k))
+        for blk in prob.blocks:
+            v, gr, he = blk.logdet(lam)
+            r = slice(blk.first, blk.first + len(blk.matrices))
+            ld_val += v
+            ld_grad[r] = gr
+            ld_hess[r, r] = he
+        sg = [m @ g[sl] for sl, m in pens]                        # S_j γ̂ on its block
+        dp1 = np.array([lam[j] * g[sl] @ sg[j] for j, (sl, _) in enumerate(pens)])
+        tr1 = np.array([lam[j] * np.sum(Hi[sl, sl] * m) for j, (sl, m) in enumerate(pens)])
+        dp2 = np.diag(dp1)
+        tr2 = np.diag(tr1)
+        for i, (sli, mi) in enumerate(pens):
+            for j in range(i, k):
+                slj, mj = pens[j]
+                cross = Hi[sli, slj]
+                q = lam[i] * lam[j] * float(sg[i] @ cross @ sg[j])
+                t = lam[i] * lam[j] * float(np.sum((mi @ cross) * (mj @ cross.T).T))
+                dp2[i, j] -= 2.0 * q
+                tr2[i, j] -= t
+                if j != i:
+                    dp2[j, i] -= 2.0 * q
+                    tr2[j, i] -= t
+        if self.scale is None:
+            nm = n - m0
+            dp = max(sol.penalized, 1e-300)
+            value = 0.5 * nm * (1.0 + np.log(2 * np.pi * dp / nm))
+            grad = 0.5 * nm * dp1 / dp
+            hess = 0.5 * nm * (dp2 / dp - np.outer(dp1, dp1) / dp ** 2)
+        else:
+            phi = self.scale
+            value = sol.penalized / (2 * phi) + 0.5 * (n - m0) * np.log(2 * np.pi * phi)
+            grad = dp1 / (2 * phi)
+            hess = dp2 / (2 * phi)
+        value += 0.5 * sol.log_det_H - 0.5 * ld_val
+        grad = grad + 0.5 * tr1 - 0.5 * ld_grad
+        hess = hess + 0.5 * tr2 - 0.5 * ld_hess
+        return value, grad, 0.5 * (hess + hess.T)
 
     def unit(self, value: float) -> float:
         """Factor that makes gradient and Hessian unit-free and independent of the number of
@@ -276,7 +351,8 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
     it = 0
     for it in range(1, max_iter + 1):  # noqa: B007
         unit = crit.unit(value)  # the step's safeguards work on the unit-free criterion
-        hess = _fd_hessian(crit, rho, grad)
+        hess = crit.last_hessian if crit.last_hessian is not None else _fd_hessian(
+            crit, rho, grad)
         step = _newton_step(hess * unit, grad * unit, rho)
         if step is None:
             converged = True
