@@ -25,7 +25,7 @@ from .dense import Constraints
 from .design import Design, batch_columns
 from .errors import ColumnNotFound, ConvergenceWarning, DataError, FitError, TallgamWarning
 from .model import Model
-from .profile import DataProfile, Field, Rule, run_profile
+from .profile import DataProfile, Field, Rule, add_weighted_histograms, run_profile
 from .progress import Event, make_callback
 from .smoothing import RHO_BOUND, Solution, select, solve
 from .sources import Source, open_source, quote
@@ -56,6 +56,13 @@ class Inputs:
     profile_fields: list[Field] = field(default_factory=list)
     rules: list[Rule] = field(default_factory=list)
     exprs: dict[str, str] = field(default_factory=dict)
+
+    def select_expr(self, alias: str) -> str:
+        """The SQL expression behind a select-list alias (e.g. the constraint weights)."""
+        for item in self.select:
+            if item.endswith(f" AS {alias}"):
+                return item[: -len(f" AS {alias}")]
+        raise KeyError(alias)
 
 
 def column_or_expression(source: Source, text: str, role: str) -> str:
@@ -127,12 +134,14 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
         cw = f"CAST({exprs[W]} AS DOUBLE)"
     if cw is not None and not for_prediction:
         select.append(f"{cw} AS {WC}")
-    seen = set()
+    seen: dict[str, Field] = {}
     for spec in design_specs:
         for f in spec.profile_fields():
             if f.key not in seen:
-                fields_.append(f)
-                seen.add(f.key)
+                seen[f.key] = Field(f.key, f.expr, f.kind, f.histogram)
+                fields_.append(seen[f.key])
+            else:  # a column several terms use: profile it once, with a histogram if any asks
+                seen[f.key].histogram |= f.histogram
     for c, kind in columns.items():
         cast = "VARCHAR" if kind == "levels" else "DOUBLE"
         select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
@@ -304,8 +313,11 @@ def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
         profile = run_profile(source, inputs.profile_fields, inputs.rules, where)
         dropped = rows_before - profile.rows
     inputs.where = where
-    callback(Event("end", "profile", rows=profile.rows))
     check_profile(profile, source, model)
+    if inputs.has_cweights:
+        add_weighted_histograms(source, profile, inputs.profile_fields,
+                                inputs.select_expr(WC), where)
+    callback(Event("end", "profile", rows=profile.rows))
     if dropped:
         warnings.warn(TallgamWarning(f"{dropped} row(s) with missing or non-finite values were "
                                      "left out (missing='drop')"), stacklevel=3)

@@ -17,6 +17,7 @@ import numpy as np
 from .sources import Source
 
 ROUND_DIGITS = 4  # significant digits kept in the value histograms
+MAX_LISTED_VALUES = 200  # numeric columns with at most this many values keep them listed
 EXAMPLES = 5
 
 
@@ -52,10 +53,19 @@ class FieldProfile:
     sd: float | None = None
     values: np.ndarray | None = None  # distinct rounded values (sorted) or level labels
     counts: np.ndarray | None = None
+    weights: np.ndarray | None = None  # Σ constraint weight (exposure) per value, if any
 
     @property
     def distinct(self) -> int:
         return 0 if self.values is None else len(self.values)
+
+    def weighted_median(self) -> float | None:
+        """The exposure- (or weight-) weighted median of the rounded values."""
+        if self.values is None or not len(self.values):
+            return None
+        w = self.weights if self.weights is not None else self.counts
+        cum = np.cumsum(w)
+        return float(self.values[int(np.searchsorted(cum, 0.5 * cum[-1]))])
 
     def to_dict(self) -> dict:
         out = {"kind": self.kind, "nulls": self.nulls, "nonfinite": self.nonfinite}
@@ -63,6 +73,11 @@ class FieldProfile:
             out.update(min=self.min, max=self.max, mean=self.mean, sd=self.sd)
             if self.values is not None:
                 out["distinct_rounded"] = self.distinct
+                out["weighted_median"] = self.weighted_median()
+                if self.distinct <= MAX_LISTED_VALUES:
+                    out["values"] = self.values.tolist()
+                    out["value_weights"] = (self.weights if self.weights is not None
+                                            else self.counts).tolist()
         else:
             out["levels"] = {str(v): int(c) for v, c in zip(self.values, self.counts)}
         return out
@@ -168,3 +183,35 @@ def level_order(labels: np.ndarray) -> np.ndarray:
         return np.lexsort((labels.astype(str), nums))
     except ValueError:
         return np.argsort(labels.astype(str), kind="stable")
+
+
+def add_weighted_histograms(source: Source, prof: DataProfile, fields: list[Field],
+                            weight_expr: str, where: str | None) -> None:
+    """Σ weight per rounded value of every histogram field (one grouped query), so that
+    reference values such as the exposure-weighted median are available."""
+    hist = [f for f in fields if f.kind == "numeric" and f.histogram]
+    if not hist:
+        return
+    keys = [f"h{i}" for i in range(len(hist))]
+    inner = ", ".join(f"{_rounded(f'CAST({f.expr} AS DOUBLE)')} AS {k}"
+                      for f, k in zip(hist, keys))
+    where_sql = f" WHERE {where}" if where else ""
+    sets = ", ".join(f"({k})" for k in keys)
+    text = (f"WITH s AS (SELECT {inner}, CAST({weight_expr} AS DOUBLE) AS w "
+            f"FROM tallgam_source{where_sql}) "
+            f"SELECT grouping_id({', '.join(keys)}) AS gid, {', '.join(keys)}, sum(w) "
+            f"FROM s GROUP BY GROUPING SETS ({sets})")
+    rows = source.fetchall(text)
+    per: dict[int, dict[float, float]] = {i: {} for i in range(len(hist))}
+    n = len(keys)
+    for row in rows:
+        gid = row[0]
+        for i in range(n):
+            if not (gid >> (n - 1 - i)) & 1:  # this set groups by key i
+                if row[1 + i] is not None:
+                    per[i][float(row[1 + i])] = float(row[-1] or 0.0)
+                break
+    for i, f in enumerate(hist):
+        fp = prof.fields[f.key]
+        if fp.values is not None:
+            fp.weights = np.array([per[i].get(float(v), 0.0) for v in fp.values])

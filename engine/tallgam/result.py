@@ -268,6 +268,15 @@ class FitResult:
                         relativity_upper=np.exp(est + z * se))
         return pa.table(cols)
 
+    def relativities(self, *, reference: dict | None = None, level: float = 0.95):
+        """Relativity tables of every term, with the base rate (see :mod:`tallgam.tables`).
+
+        ``reference`` overrides the reference value of numeric columns (default: the
+        exposure-weighted median of the training data)."""
+        from .tables import relativity_tables
+
+        return relativity_tables(self, reference=reference, level=level)
+
     # ------------------------------------------------------------------ output
     def summary(self) -> str:
         from .report import summary_text

@@ -243,6 +243,9 @@ class LinearSpec(TermSpec):
 
     kind = "linear"
 
+    def profile_fields(self):
+        return [_numeric_field(self.column, histogram=True)]  # values for relativity tables
+
     def build(self, profile: DataProfile) -> LinearBasis:
         fp = profile[f"num:{self.column}"]
         if not fp.sd or fp.sd <= 0:
