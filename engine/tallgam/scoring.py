@@ -50,7 +50,7 @@ class Scorer:
     """Streams predictions of a fitted model over a source."""
 
     def __init__(self, fit, source: Source, *, with_offset: bool = True, unseen: str = "error",
-                 keep: tuple[str, ...] = ()):
+                 keep: tuple[str, ...] = (), extra: dict[str, str] | None = None):
         if unseen not in UNSEEN:
             raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {unseen!r}")
         self.fit = fit
@@ -60,9 +60,11 @@ class Scorer:
         self.inputs = model_inputs(fit.model, source, fit.model.terms, for_prediction=True,
                                    with_offset=with_offset)
         source.require_columns(list(keep))
-        self.keep = list(keep)
+        extra = dict(extra or {})  # more output columns: name -> SQL over the source
+        self.keep = list(keep) + list(extra)
         self.select = self.inputs.select + [f"{quote(k)} AS {quote('__keep_' + k)}"
-                                            for k in self.keep]
+                                            for k in keep] + [
+            f"{sql} AS {quote('__keep_' + name)}" for name, sql in extra.items()]
         self.report = ScoreReport()
         beta = fit.coefficients_raw
         self.beta_d = np.ascontiguousarray(beta[:self.design.pd])
