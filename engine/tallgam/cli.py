@@ -1,4 +1,4 @@
-"""The ``tallgam`` command line: fit, show, score, sql and demo.
+"""The ``tallgam`` command line: fit, show, score, sql, tables, validate, report, demo.
 
 Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
 column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
@@ -102,6 +102,61 @@ def cmd_sql(args) -> int:
     return EXIT_OK
 
 
+def cmd_tables(args) -> int:
+    from .modelfile import load
+
+    fit = load(args.model)
+    reference = {}
+    for item in args.reference or []:
+        col, _, value = item.partition("=")
+        try:
+            reference[col] = float(value)
+        except ValueError:
+            raise SpecError(f"--reference takes COLUMN=NUMBER, got {item!r}") from None
+    formats = [f for f in args.format.split(",") if f]
+    tables = fit.relativities(reference=reference)
+    paths = tables.write(args.output, formats=formats)
+    if tables.base_rate is not None:
+        print(f"base rate {tables.base_rate:.6g} per unit of exposure")
+    print(f"{len(paths)} files written to {args.output}", file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_validate(args) -> int:
+    from .modelfile import load
+
+    fit = load(args.model)
+    against = load(args.against) if args.against else None
+    val = fit.validate(args.data, against=against, batch_rows=args.batch_rows,
+                       progress=_progress(args))
+    print(val.summary())
+    if args.output:
+        import pyarrow.csv as pacsv
+
+        os.makedirs(args.output, exist_ok=True)
+        named = {"lift": val.lift, "lorenz": val.lorenz}
+        if val.double_lift is not None:
+            named["double_lift"] = val.double_lift
+        for col, table in val.actual_vs_expected.items():
+            named[f"actual_vs_expected_{col}"] = table
+        for name, table in named.items():
+            pacsv.write_csv(table, os.path.join(args.output, f"{name}.csv"))
+        print(f"{len(named)} tables written to {args.output}", file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_report(args) -> int:
+    from .modelfile import load
+    from .report import write_report
+
+    fit = load(args.model)
+    against = load(args.against) if args.against else None
+    path = write_report(fit, args.output, data=args.data, against=against, title=args.title,
+                        progress=_progress(args))
+    print(f"report written to {path}", file=sys.stderr)
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from .demo import run_demo
     from .report import CAUTION
@@ -115,6 +170,8 @@ def cmd_demo(args) -> int:
          f"{res.expected_claims:,.1f} (ratio {res.actual_claims / res.expected_claims:.4f})")
     echo(f"models: {os.path.join(res.folder, 'frequency.json')}, "
          f"{os.path.join(res.folder, 'severity.json')}; scores: {res.scored}")
+    if res.reports:
+        echo("reports: " + ", ".join(res.reports))
     echo(f"\n{CAUTION}")
     return EXIT_OK
 
@@ -165,6 +222,33 @@ def build_parser() -> argparse.ArgumentParser:
     q.add_argument("--output", choices=["response", "link"], default="response")
     q.add_argument("--no-offset", action="store_true", help="leave out exposure/offset")
     q.set_defaults(func=cmd_sql)
+
+    t = sub.add_parser("tables", help="write every term's relativity table (CSV, Parquet)")
+    t.add_argument("model")
+    t.add_argument("-o", "--output", required=True, help="folder for the tables")
+    t.add_argument("--format", default="csv,parquet", help="csv, parquet or both (default)")
+    t.add_argument("--reference", action="append", metavar="COLUMN=VALUE",
+                   help="reference value of a numeric column (default: exposure-weighted "
+                        "median); repeatable")
+    t.set_defaults(func=cmd_tables)
+
+    v = sub.add_parser("validate", help="hold-out deviance, Gini, lift, actual vs expected")
+    v.add_argument("model")
+    v.add_argument("data", help="hold-out data: file, glob or directory")
+    v.add_argument("--against", help="a second model file: adds the double lift")
+    v.add_argument("-o", "--output", help="folder to write the tables as CSV")
+    v.add_argument("--batch-rows", type=int, default=1_000_000)
+    common(v)
+    v.set_defaults(func=cmd_validate)
+
+    r = sub.add_parser("report", help="a self-contained HTML report of a model")
+    r.add_argument("model")
+    r.add_argument("--data", help="hold-out data for the validation section")
+    r.add_argument("--against", help="a challenger model file for the double lift")
+    r.add_argument("-o", "--output", required=True, help="HTML file to write")
+    r.add_argument("--title", help="report title")
+    common(r)
+    r.set_defaults(func=cmd_report)
 
     d = sub.add_parser("demo", help="write an invented motor book, fit, summarise and score")
     d.add_argument("--rows", type=int, default=1_000_000)

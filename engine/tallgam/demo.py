@@ -128,51 +128,108 @@ class DemoResult:
     scored: str
     actual_claims: float
     expected_claims: float
+    reports: list[str]
+    tables: list[str]
 
 
-def frequency_model():
+TRAIN = "policy_year <= 2023"   # the demo fits on three years and holds out the fourth
+HOLDOUT = "policy_year = 2024"
+
+
+def frequency_model(where: str | None = TRAIN):
     import tallgam as tg
 
     return tg.Model(
-        response="claim_count", family="poisson", exposure="exposure",
+        response="claim_count", family="poisson", exposure="exposure", where=where,
         terms=[tg.spline("driver_age", size=12), tg.spline("vehicle_age", size=8),
                tg.spline("density", size=8), tg.linear("bonus_level"),
                tg.categorical("region"), tg.categorical("fuel")])
 
 
-def severity_model():
+def banded_frequency_model(where: str | None = TRAIN):
+    """The challenger a pricing team might start from: straight lines and levels only."""
+    import tallgam as tg
+
+    return tg.Model(
+        response="claim_count", family="poisson", exposure="exposure", where=where,
+        terms=[tg.linear("driver_age"), tg.linear("vehicle_age"), tg.linear("bonus_level"),
+               tg.categorical("region"), tg.categorical("fuel")])
+
+
+def severity_model(where: str | None = TRAIN):
     import tallgam as tg
 
     return tg.Model(
         response="claim_amount / claim_count", family="gamma", weights="claim_count",
-        where="claim_count > 0",
+        where=f"claim_count > 0 AND ({where})" if where else "claim_count > 0",
         terms=[tg.spline("driver_age", size=8), tg.spline("vehicle_power", size=6),
                tg.categorical("region")])
 
 
 def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
              echo: Callable[[str], None] = lambda s: None) -> DemoResult:
-    """Write the book, fit frequency and severity, save the models, score the book."""
+    """Write the book; fit frequency (and a banded challenger) and severity on 2021–2023;
+    save the models; write relativity tables; validate on 2024 into HTML reports; score
+    the whole book."""
     import duckdb
+
+    import tallgam as tg
 
     folder = os.fspath(folder)
     book_dir = os.path.join(folder, "book")
     echo(f"writing an invented motor book of {rows:,} policies to {book_dir}")
     book = write_book(book_dir, rows, seed=seed)
     glob = os.path.join(book_dir, "*.parquet")
-    echo("fitting the claim-frequency model (poisson, log link, exposure offset)")
+    quoted = "'" + glob.replace("'", "''") + "'"
+    holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) WHERE {HOLDOUT}")
+    echo(f"fitting the claim-frequency model on {TRAIN} (poisson, log link, exposure offset)")
     freq = frequency_model().fit(glob, progress=progress)
     freq.save(os.path.join(folder, "frequency.json"))
     echo(freq.summary())
+    echo("fitting a banded challenger (straight lines and levels only)")
+    banded = banded_frequency_model().fit(glob, progress=progress)
+    banded.save(os.path.join(folder, "frequency_banded.json"))
     echo("fitting the claim-severity model (gamma, log link, claim counts as weights)")
     sev = severity_model().fit(glob, progress=progress)
     sev.save(os.path.join(folder, "severity.json"))
     echo(sev.summary())
+    tables = []
+    for name, fit in (("frequency", freq), ("severity", sev)):
+        tables += fit.relativities().write(os.path.join(folder, "tables", name))
+    echo(f"relativity tables written to {os.path.join(folder, 'tables')}")
+    reports = _reports(folder, freq, banded, sev, holdout, glob, progress, echo)
     scored = os.path.join(folder, "scored_frequency.parquet")
-    echo(f"scoring the book with the frequency model into {scored}")
+    echo(f"scoring the whole book with the frequency model into {scored}")
     freq.score(glob, scored, keep=["policy_id"], progress=progress)
     con = duckdb.connect()
     actual, expected = con.execute(
         "SELECT sum(b.claim_count), sum(s.prediction) FROM read_parquet(?) b "
-        "JOIN read_parquet(?) s USING (policy_id)", [glob, scored]).fetchone()
-    return DemoResult(folder, book, freq, sev, scored, float(actual), float(expected))
+        "JOIN read_parquet(?) s USING (policy_id)", [glob, scored]).fetchall()[0]
+    return DemoResult(folder, book, freq, sev, scored, float(actual), float(expected),
+                      reports, tables)
+
+
+def _reports(folder, freq, banded, sev, holdout, glob, progress, echo) -> list[str]:
+    try:
+        import matplotlib  # noqa: F401
+    except ImportError:
+        echo("matplotlib is not installed: the HTML reports are skipped "
+             "(pip install 'tallgam[plot]')")
+        return []
+    import tallgam as tg
+
+    from .report import write_report
+
+    quoted = "'" + glob.replace("'", "''") + "'"
+    sev_holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) "
+                         f"WHERE claim_count > 0 AND {HOLDOUT}")
+    out = [
+        write_report(freq, os.path.join(folder, "report_frequency.html"), data=holdout,
+                     against=banded, title="Claim frequency — demo motor book",
+                     progress=progress),
+        write_report(sev, os.path.join(folder, "report_severity.html"), data=sev_holdout,
+                     title="Claim severity — demo motor book", progress=progress),
+    ]
+    echo(f"reports validated on the {HOLDOUT.split()[0].replace('_', ' ')} 2024 hold-out: "
+         + ", ".join(out))
+    return out

@@ -84,3 +84,168 @@ def summary_text(fit) -> str:
     if fit.notes:
         lines += ["", "  notes:"] + [f"  - {n}" for n in fit.notes]
     return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------------------
+# the self-contained HTML report
+
+_CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0;
+color:#1d232a;background:#fbfaf7}
+main{max-width:1020px;margin:0 auto;padding:24px 28px 60px}
+h1{font-size:1.55em;margin:0 0 4px;color:#16324f}
+h2{font-size:1.2em;margin:36px 0 10px;padding-bottom:4px;border-bottom:2px solid #16324f;
+color:#16324f}
+h3{font-size:1.02em;margin:24px 0 8px}
+.meta{color:#5b6570;font-size:.9em}
+.caution{border-left:5px solid #b5542b;background:#f6ece6;padding:10px 14px;margin:18px 0}
+pre{background:#f0eee9;padding:12px;overflow-x:auto;font-size:.82em;line-height:1.35}
+table{border-collapse:collapse;font-size:.82em;margin:6px 0 14px}
+th,td{padding:3px 9px;border-bottom:1px solid #ddd;text-align:right}
+th{background:#ebe8e1;position:sticky;top:0}
+td:first-child,th:first-child{text-align:left}
+figure{margin:10px 0}
+img{max-width:100%;height:auto;border:1px solid #e3e0da;background:white}
+.grid{display:grid;grid-template-columns:1fr 1fr;gap:14px}
+.note{color:#5b6570;font-size:.85em}
+nav a{margin-right:14px}
+"""
+
+_CHECK_SCRIPT = """
+window.addEventListener("load", function () {
+  var imgs = Array.prototype.slice.call(document.images);
+  var broken = imgs.filter(function (i) { return !(i.complete && i.naturalWidth > 0); });
+  document.body.setAttribute("data-images", broken.length ? "broken:" + broken.length
+                                                          : "ok:" + imgs.length);
+});
+"""
+
+MAX_TABLE_ROWS = 40
+
+
+def _esc(text) -> str:
+    import html
+
+    return html.escape(str(text))
+
+
+def _cell(v) -> str:
+    if isinstance(v, float):
+        return _esc(_num(v, 5))
+    return _esc(v if v is not None else "–")
+
+
+def _html_table(table, max_rows: int = MAX_TABLE_ROWS) -> str:
+    rows = table.to_pylist()
+    cols = table.column_names
+    shown = rows if len(rows) <= max_rows else rows[:: -(-len(rows) // max_rows)]
+    head = "".join(f"<th>{_esc(c)}</th>" for c in cols)
+    body = "".join("<tr>" + "".join(f"<td>{_cell(r[c])}</td>" for c in cols) + "</tr>"
+                   for r in shown)
+    note = (f'<p class="note">{len(shown)} of {len(rows)} rows shown (evenly spaced); the full '
+            "table is in the tables export.</p>" if len(shown) < len(rows) else "")
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>{note}"
+
+
+def _img(png: bytes, alt: str) -> str:
+    import base64
+
+    data = base64.b64encode(png).decode("ascii")
+    return f'<figure><img alt="{_esc(alt)}" src="data:image/png;base64,{data}"></figure>'
+
+
+def _profile_table(fit) -> str:
+    rows = []
+    for key, col in fit.profile.get("columns", {}).items():
+        name = key.split(":", 1)[-1]
+        if col.get("kind") == "numeric":
+            rows.append((name, "numeric", f"{_num(col.get('min'))} to {_num(col.get('max'))}",
+                         _num(col.get("mean")), _num(col.get("weighted_median"))))
+        else:
+            levels = col.get("levels", {})
+            rows.append((name, "levels", f"{len(levels)} levels", "–", "–"))
+    head = "".join(f"<th>{h}</th>" for h in ("column", "kind", "range", "mean",
+                                             "weighted median"))
+    body = "".join("<tr>" + "".join(f"<td>{_esc(v)}</td>" for v in r) + "</tr>" for r in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def html_report(fit, validation=None, *, title: str | None = None) -> str:
+    """One self-contained HTML page: summary, every term's figure and table, the data
+    profile, hold-out validation (if given) and the cautions. Images are embedded."""
+    from . import plots
+
+    log_link = fit.model.link.name == "log"
+    rel = fit.relativities()
+    title = title or f"{fit.model.family.name} model of {fit.model.response}"
+    parts = [f"<h1>{_esc(title)}</h1>",
+             f'<p class="meta">tallgam {_esc(fit.provenance.get("tallgam_version", ""))} · '
+             f'fitted {_esc(fit.provenance.get("fitted_at", ""))} · '
+             f'{fit.statistics["rows"]:,} training rows</p>',
+             f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
+             '<nav><a href="#summary">Summary</a><a href="#terms">Terms</a>'
+             '<a href="#validation">Validation</a><a href="#data">Data</a></nav>',
+             '<h2 id="summary">Summary</h2>', f"<pre>{_esc(summary_text(fit))}</pre>"]
+    if rel.base_rate is not None:
+        parts.append(f"<p>Base rate at the reference point: <strong>{rel.base_rate:.6g}"
+                     "</strong> per unit of exposure; every relativity below multiplies it.</p>")
+    parts.append('<h2 id="terms">Terms</h2>')
+    for label, table in rel.tables.items():
+        parts.append(f"<h3>{_esc(label)}</h3>")
+        ref = rel.references.get(label, {})
+        if ref:
+            shown = ", ".join(f"{k} = {v}" for k, v in ref.items() if v is not None)
+            if shown:
+                parts.append(f'<p class="note">reference: {_esc(shown)}</p>')
+        keys = [c for c in table.column_names if c not in plots._STAT_COLUMNS]
+        if len(keys) == 2 and label.startswith("surface("):
+            fig = plots.surface_figure(table, label, log_link=log_link)
+        else:
+            fig = plots.effect_figure(table, label, log_link=log_link)
+        parts.append(_img(plots.to_png(fig), f"effect of {label}"))
+        parts.append(_html_table(table))
+    parts.append('<h2 id="validation">Validation</h2>')
+    if validation is None:
+        parts.append('<p class="note">No hold-out data was given; run <code>tallgam report '
+                     "MODEL --data HOLDOUT</code> to add lift, Gini and actual-versus-expected "
+                     "tables.</p>")
+    else:
+        v = validation
+        parts.append(f"<pre>{_esc(v.summary())}</pre>")
+        parts.append('<div class="grid">'
+                     + _img(plots.to_png(plots.lift_figure(v.lift)), "lift chart")
+                     + _img(plots.to_png(plots.lorenz_figure(v.lorenz, v.gini)), "Lorenz curve")
+                     + "</div>")
+        parts.append(_html_table(v.lift))
+        if v.double_lift is not None:
+            parts.append("<h3>Double lift against the challenger</h3>")
+            parts.append(_img(plots.to_png(plots.double_lift_figure(v.double_lift)),
+                              "double lift"))
+            parts.append(_html_table(v.double_lift))
+        for column, table in v.actual_vs_expected.items():
+            parts.append(f"<h3>Actual versus expected by {_esc(column)}</h3>")
+            parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, column)),
+                              f"actual versus expected by {column}"))
+            parts.append(_html_table(table))
+    parts.append('<h2 id="data">Training data</h2>')
+    parts.append(f"<p>{fit.profile.get('rows', 0):,} rows"
+                 + (f", filter <code>{_esc(fit.model.where)}</code>" if fit.model.where else "")
+                 + ".</p>")
+    parts.append(_profile_table(fit))
+    parts.append(f'<div class="caution">{_esc(CAUTION)}</div>')
+    body = "\n".join(parts)
+    return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+            f'<meta name="viewport" content="width=device-width, initial-scale=1">'
+            f"<title>{_esc(title)}</title><style>{_CSS}</style></head>"
+            f"<body><main>{body}</main><script>{_CHECK_SCRIPT}</script></body></html>\n")
+
+
+def write_report(fit, path, *, data=None, against=None, title: str | None = None,
+                 progress=False) -> str:
+    """Validate on ``data`` (if given) and write the HTML report atomically; returns path."""
+    from .modelfile import atomic_write_text
+
+    validation = fit.validate(data, against=against, progress=progress) if data is not None \
+        else None
+    atomic_write_text(path, html_report(fit, validation, title=title))
+    return str(path)

@@ -4,7 +4,9 @@ A :class:`FitResult` holds only p-sized and p × p quantities plus the data prof
 is small whatever the number of rows, and it round-trips exactly through the JSON model
 file (:mod:`tallgam.modelfile`). Coefficients and covariance are kept in *raw*
 coordinates (one per basis column, base levels at zero) so prediction is a plain sparse
-product with the same kernels as fitting.
+product with the same kernels as fitting. The covariance is a
+:class:`~tallgam.covariance.Covariance`: a dense matrix, or for a fit with a large
+eliminated random effect a structured one that never holds an L × L block.
 """
 
 from __future__ import annotations
@@ -13,6 +15,7 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
+from .covariance import Covariance
 from .design import Design
 from .errors import SpecError
 from .model import Model
@@ -32,17 +35,20 @@ class FitResult:
     deviance, null_deviance, deviance_explained, r2_adjusted, loglik, aic : fit statistics.
     criterion : (name, value) of the smoothing criterion at the optimum.
     converged, passes, history : how the iterations went (data passes exclude the profile).
+    covariance : the Bayesian covariance of the raw coefficients (:class:`Covariance`);
+        ``covariance_raw`` is its p × p array when no term was eliminated.
     """
 
     def __init__(self, model: Model, bases: list[Basis], beta: np.ndarray,
-                 covariance: np.ndarray, edf: dict, smoothing: dict, statistics: dict,
+                 covariance: np.ndarray | Covariance, edf: dict, smoothing: dict, statistics: dict,
                  profile: dict, history: list[dict], notes: list[str], provenance: dict,
                  expressions: dict | None = None):
         self.model = model
         self.bases = bases
         self.design = Design(bases)
         self.coefficients_raw = np.asarray(beta, dtype=np.float64)
-        self.covariance_raw = np.asarray(covariance, dtype=np.float64)
+        self.covariance = (covariance if isinstance(covariance, Covariance)
+                           else Covariance(np.asarray(covariance, dtype=np.float64)))
         self.edf = edf
         self.smoothing = smoothing
         self.statistics = statistics
@@ -58,8 +64,7 @@ class FitResult:
         from . import __version__
 
         sol, cons, design = fs.solution, fs.constraints, fs.design
-        cov_free = sol.H_inv * fs.scale
-        cov_raw = cons.raw_covariance(cov_free)
+        cov_raw = cons.covariance(sol, fs.scale)
         edf = {}
         for b, fsl in zip(design.bases, cons.free_slices):
             edf[b.label] = float(np.sum(sol.edf[fsl]))
@@ -105,6 +110,12 @@ class FitResult:
                    fs.profile.to_dict(), history, list(fs.notes), provenance, fs.expressions)
 
     # ------------------------------------------------------------------ statistics
+    @property
+    def covariance_raw(self) -> np.ndarray:
+        """The p × p covariance of the raw coefficients (SpecError for a fit whose large
+        random effect was eliminated: use :attr:`covariance`)."""
+        return self.covariance.matrix()
+
     @property
     def scale(self) -> float:
         return self.statistics["scale"]
@@ -172,7 +183,7 @@ class FitResult:
         Linear terms are reported per unit of their column; base levels are 0 with se 0.
         """
         terms, names, est, se = [], [], [], []
-        sd = np.sqrt(np.maximum(np.diag(self.covariance_raw), 0.0))
+        sd = np.sqrt(np.maximum(self.covariance.diagonal(), 0.0))
         for b, sl in zip(self.bases, self.design.slices):
             e, s = self.coefficients_raw[sl], sd[sl]
             if isinstance(b, LinearBasis):
@@ -255,11 +266,16 @@ class FitResult:
                   for k, v in self.profile.get("columns", {}).items()
                   if k.startswith("num:") and v.get("min") is not None}
         grid = b.effect_grid(points, ranges)
-        X = term_matrix(b, grid)
         beta = self.coefficients_raw[sl]
-        cov = self.covariance_raw[sl, sl]
-        est = X @ beta
-        se = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", X, cov, X), 0.0))
+        if b.group == "levels":  # one indicator per row: read the levels, form no matrix
+            code = b.codes({c: pa.array(v, type=pa.string()) for c, v in grid.items()})
+            est = beta[code]
+            var = self.covariance.diagonal()[sl][code]
+        else:
+            X = term_matrix(b, grid)
+            est = X @ beta
+            var = self.covariance.term_variances(sl, X)
+        se = np.sqrt(np.maximum(var, 0.0))
         z = stats.norm.ppf(0.5 + level / 2.0)
         cols = dict(grid)
         cols.update(estimate=est, std_error=se, lower=est - z * se, upper=est + z * se)
@@ -276,6 +292,14 @@ class FitResult:
         from .tables import relativity_tables
 
         return relativity_tables(self, reference=reference, level=level)
+
+    def validate(self, data, *, against=None, batch_rows: int = 1_000_000, progress=False):
+        """Hold-out statistics on ``data``: deviance, Gini, lift, actual versus expected by
+        rating factor; with ``against`` (another fit) the double lift. Streams through
+        DuckDB with bounded memory (see :mod:`tallgam.validation`)."""
+        from .validation import validate
+
+        return validate(self, data, against=against, batch_rows=batch_rows, progress=progress)
 
     # ------------------------------------------------------------------ output
     def summary(self) -> str:

@@ -1,0 +1,288 @@
+"""Hold-out validation, streamed: deviance, Gini, lift, actual versus expected.
+
+The hold-out source is scored batch by batch into a scratch Parquet file (one row per
+policy: actual, expected, exposure, the rating factors), then DuckDB computes every table
+with SQL — sorting by predicted rate happens inside DuckDB, which spills to disk, so memory
+stays bounded whatever the number of rows. Definitions:
+
+* actual = Σ w·y, expected = Σ w·μ (μ includes the exposure), exposure = the model's
+  exposure, else its weights, else 1 per row;
+* Gini from the ordered Lorenz curve (Frees, Meyers & Cummings 2011, JASA 106:1085):
+  policies sorted by predicted rate μ/exposure, x = cumulative share of exposure,
+  y = cumulative share of actual; Gini = 1 − 2·(area under the curve), trapezoids over
+  groups of tied predictions. For a 0/1 response with unit exposure it equals 2·AUC − 1;
+* lift: ten bands of equal exposure by predicted rate; double lift: bands by the ratio
+  of two models' predictions;
+* actual versus expected by band of every rating factor: levels for level columns, ten
+  bands of equal exposure for numeric ones; bands add up to the totals.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from dataclasses import dataclass, field
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .errors import DataError
+from .fitting import W, Y, model_inputs
+from .sources import open_source, quote
+
+BANDS = 10
+LORENZ_POINTS = 201
+
+
+@dataclass
+class Validation:
+    """Hold-out statistics of a model (and of a challenger, for the double lift)."""
+
+    rows: int
+    exposure: float
+    actual: float
+    expected: float
+    deviance: float
+    null_deviance: float
+    gini: float
+    lorenz: pa.Table
+    lift: pa.Table
+    actual_vs_expected: dict[str, pa.Table] = field(default_factory=dict)
+    double_lift: pa.Table | None = None
+    challenger_gini: float | None = None
+    challenger_deviance: float | None = None
+
+    @property
+    def deviance_explained(self) -> float:
+        return 1.0 - self.deviance / self.null_deviance if self.null_deviance > 0 else np.nan
+
+    @property
+    def actual_over_expected(self) -> float:
+        return self.actual / self.expected if self.expected else np.nan
+
+    def summary(self) -> str:
+        lines = [
+            f"hold-out: {self.rows:,} rows, exposure {self.exposure:,.6g}",
+            f"  actual {self.actual:,.6g} · expected {self.expected:,.6g} · "
+            f"actual/expected {self.actual_over_expected:.4f}",
+            f"  deviance {self.deviance:,.6g} against {self.null_deviance:,.6g} for a flat "
+            f"rate: {100 * self.deviance_explained:.2f}% explained",
+            f"  Gini {self.gini:.4f}",
+        ]
+        if self.challenger_gini is not None:
+            lines.append(f"  challenger: Gini {self.challenger_gini:.4f}, deviance "
+                         f"{self.challenger_deviance:,.6g}")
+        lines += ["", "  lift by band of predicted rate (equal exposure)",
+                  f"  {'band':>4}{'exposure':>14}{'actual rate':>14}{'predicted':>14}{'A/E':>8}"]
+        for r in self.lift.to_pylist():
+            lines.append(f"  {r['band']:>4}{r['exposure']:>14,.6g}{r['actual_rate']:>14.6g}"
+                         f"{r['expected_rate']:>14.6g}{r['actual_over_expected']:>8.3f}")
+        return "\n".join(lines)
+
+
+def _model_columns(fit) -> dict[str, str]:
+    """Rating factors to band: every input column of every term, with its kind."""
+    out: dict[str, str] = {}
+    for b in fit.bases:
+        if b.inputs:
+            out.update(b.spec.input_kinds())
+    return out
+
+
+def _score_to_scratch(fit, source, path, challenger, challenger_source, batch_rows,
+                      progress) -> dict:
+    """Stream the hold-out into ``path``: actual, expected(s), exposure, weight, factors.
+    Returns the streamed sums (deviance, totals)."""
+    from .progress import Event, make_callback
+    from .scoring import Scorer
+
+    callback = make_callback(progress)
+    fam = fit.model.family
+    inputs = model_inputs(fit.model, source, fit.model.terms)  # response, weights, exposure
+    extra = {"__y": inputs.select_expr(Y)}
+    if inputs.has_weights:
+        extra["__w"] = inputs.select_expr(W)
+    if "__exposure" in inputs.exprs:
+        extra["__e"] = f"CAST({inputs.exprs['__exposure']} AS DOUBLE)"
+    factors = _model_columns(fit)
+    for c, kind in factors.items():
+        extra[f"f:{c}"] = f"CAST({quote(c)} AS {'VARCHAR' if kind == 'levels' else 'DOUBLE'})"
+    scorer = Scorer(fit, source, extra=extra)
+    other = Scorer(challenger, challenger_source) if challenger is not None else None
+    other_batches = other.batches(batch_rows) if other is not None else None
+    sums = {"deviance": 0.0, "challenger_deviance": 0.0}
+    writer = None
+    done = 0
+    callback(Event("start", "validation"))
+    try:
+        for kept, arrays in scorer.batches(batch_rows):
+            n = kept.num_rows
+            y = np.asarray(kept.column("__y").to_numpy(zero_copy_only=False), dtype=np.float64)
+            w = (np.asarray(kept.column("__w").to_numpy(zero_copy_only=False), dtype=np.float64)
+                 if "__w" in extra else np.ones(n))
+            mu = arrays["response"]
+            if not (np.all(np.isfinite(y)) and np.all(np.isfinite(w))):
+                raise DataError("the hold-out has NULL or non-finite values in the response "
+                                "or weights; filter them first")
+            sums["deviance"] += float(np.sum(w * fam.unit_deviance(y, fam.clip_mu(mu))))
+            e = (np.asarray(kept.column("__e").to_numpy(zero_copy_only=False), np.float64)
+                 if "__e" in extra else w)
+            cols = {"row": np.arange(done, done + n, dtype=np.int64), "actual": w * y,
+                    "expected": w * mu, "exposure": e, "weight": w, "y": y}
+            if other_batches is not None:
+                _, arrays_b = next(other_batches)
+                mu_b = arrays_b["response"]
+                cols["expected_b"] = w * mu_b
+                sums["challenger_deviance"] += float(
+                    np.sum(w * challenger.model.family.unit_deviance(
+                        y, challenger.model.family.clip_mu(mu_b))))
+            for c in factors:
+                cols[f"f:{c}"] = kept.column(f"f:{c}")
+            table = pa.table(cols)
+            if writer is None:
+                writer = pq.ParquetWriter(path, table.schema)
+            writer.write_table(table)
+            done += n
+            callback(Event("advance", "validation", rows=done))
+    finally:
+        if writer is not None:
+            writer.close()
+    callback(Event("end", "validation", rows=done))
+    if done == 0:
+        raise DataError("the hold-out data has no rows")
+    scorer.report.warn()
+    return sums
+
+
+def validate(fit, data, *, against=None, batch_rows: int = 1_000_000, progress=False,
+             scratch_dir: str | None = None) -> Validation:
+    """Hold-out statistics of ``fit`` on ``data`` (any source); ``against`` a second fitted
+    model for the double lift. Memory is bounded; a scratch Parquet file (removed at the
+    end) holds one row per hold-out row."""
+    source = open_source(data)
+    owned = source is not data
+    # the challenger streams the same rows side by side, on a connection of its own
+    second = open_source(data) if against is not None else None
+    fd, path = tempfile.mkstemp(prefix="tallgam-holdout-", suffix=".parquet", dir=scratch_dir)
+    os.close(fd)
+    try:
+        sums = _score_to_scratch(fit, source, path, against, second, batch_rows, progress)
+        return _tables(fit, path, sums, against)
+    finally:
+        if os.path.exists(path):
+            os.remove(path)
+        if owned:
+            source.close()
+        if second is not None and second is not data:
+            second.close()
+
+
+def _tables(fit, path: str, sums: dict, challenger) -> Validation:
+    con = duckdb.connect()
+    literal = "'" + path.replace("'", "''") + "'"
+    con.execute(f"CREATE VIEW h AS SELECT *, expected / exposure AS rate "
+                f"FROM read_parquet({literal})")
+    rows, exposure, actual, expected = con.execute(
+        "SELECT count(*), sum(exposure), sum(actual), sum(expected) FROM h").fetchall()[0]
+    null_dev = _flat_rate_deviance(fit, con, actual / exposure)
+    gini = _gini(con, "rate")
+    lorenz = _lorenz(con, "rate")
+    lift = _bands_by(con, "rate", ["expected"])
+    ave = {}
+    for c, kind in _model_columns(fit).items():
+        ave[c] = _actual_vs_expected(con, f'"f:{c}"', kind)
+    val = Validation(rows=int(rows), exposure=float(exposure), actual=float(actual),
+                     expected=float(expected), deviance=sums["deviance"],
+                     null_deviance=null_dev, gini=gini, lorenz=lorenz, lift=lift,
+                     actual_vs_expected=ave)
+    if challenger is not None:
+        con.execute("CREATE VIEW hb AS SELECT *, expected_b / exposure AS rate_b, "
+                    "expected / expected_b AS ratio FROM h")
+        val.double_lift = _bands_by(con, "ratio", ["expected", "expected_b"], view="hb")
+        val.challenger_gini = _gini(con, "rate_b", view="hb")
+        val.challenger_deviance = sums["challenger_deviance"]
+    return val
+
+
+def _flat_rate_deviance(fit, con, rate: float) -> float:
+    """Deviance of the flat model μ = rate × exposure (× weight-free), streamed."""
+    fam = fit.model.family
+    total = 0.0
+    reader = con.sql("SELECT y, weight, exposure FROM h").to_arrow_reader(1_000_000)
+    for batch in reader:
+        y, w, e = (np.asarray(batch.column(i).to_numpy(zero_copy_only=False), np.float64)
+                   for i in range(3))
+        mu = rate * e / w  # per-row mean of y: expected = w·μ, flat rate per exposure
+        total += float(np.sum(w * fam.unit_deviance(y, fam.clip_mu(mu))))
+    return total
+
+
+def _cumulative(order: str, view: str) -> str:
+    return (f"WITH g AS (SELECT {order} AS key, sum(exposure) AS e, sum(actual) AS a "
+            f"FROM {view} GROUP BY 1), c AS (SELECT key, e, a, "
+            f"sum(e) OVER (ORDER BY key ROWS UNBOUNDED PRECEDING) AS ce, "
+            f"sum(a) OVER (ORDER BY key ROWS UNBOUNDED PRECEDING) AS ca, "
+            f"row_number() OVER (ORDER BY key) AS k FROM g)")
+
+
+def _gini(con, order: str, view: str = "h") -> float:
+    e_tot, a_tot = con.execute(f"SELECT sum(exposure), sum(actual) FROM {view}").fetchall()[0]
+    if not a_tot or not e_tot:
+        return float("nan")
+    (s,) = con.execute(_cumulative(order, view) + " SELECT sum(e * (2 * ca - a)) FROM c"
+                       ).fetchall()[0]
+    return float(1.0 - s / (e_tot * a_tot))
+
+
+def _lorenz(con, order: str, view: str = "h") -> pa.Table:
+    (m,) = con.execute(f"SELECT count(DISTINCT {order}) FROM {view}").fetchall()[0]
+    step = max(1, int(m) // (LORENZ_POINTS - 1))
+    e_tot, a_tot = con.execute(f"SELECT sum(exposure), sum(actual) FROM {view}").fetchall()[0]
+    table = con.sql(
+        _cumulative(order, view) + f" SELECT ce / {e_tot!r} AS exposure_share, "
+        f"ca / {a_tot or 1.0!r} AS actual_share FROM c WHERE k % {step} = 0 OR k = {int(m)} "
+        "ORDER BY k").to_arrow_table()
+    start = pa.table({"exposure_share": [0.0], "actual_share": [0.0]})
+    return pa.concat_tables([start, table.cast(start.schema)])
+
+
+def _bands_by(con, order: str, expected: list[str], view: str = "h") -> pa.Table:
+    """Ten bands of equal exposure by ``order``: exposure, actual and expected sums."""
+    sums = ", ".join(f"sum({c}) AS {c}" for c in expected)
+    rates = ", ".join(f"sum({c}) / sum(exposure) AS {c}_rate" for c in expected)
+    ratios = ", ".join(f"sum(actual) / nullif(sum({c}), 0) AS actual_over_{c}"
+                       for c in expected)
+    text = (f"WITH s AS (SELECT *, sum(exposure) OVER (ORDER BY {order}, row "
+            f"ROWS UNBOUNDED PRECEDING) - exposure AS before, sum(exposure) OVER () AS tot "
+            f"FROM {view}) SELECT least(CAST(floor({BANDS} * before / tot) AS INTEGER), "
+            f"{BANDS - 1}) + 1 AS band, min({order}) AS from_value, max({order}) AS to_value, "
+            f"count(*) AS rows, sum(exposure) AS exposure, sum(actual) AS actual, {sums}, "
+            f"sum(actual) / sum(exposure) AS actual_rate, {rates}, {ratios} "
+            f"FROM s GROUP BY 1 ORDER BY 1")
+    return con.sql(text).to_arrow_table()
+
+
+def _actual_vs_expected(con, column: str, kind: str) -> pa.Table:
+    if kind == "levels":
+        text = (f"SELECT coalesce({column}, '(missing)') AS band, count(*) AS rows, "
+                f"sum(exposure) AS exposure, sum(actual) AS actual, sum(expected) AS expected, "
+                f"sum(actual) / nullif(sum(expected), 0) AS actual_over_expected "
+                f"FROM h GROUP BY 1 ORDER BY 1")
+        return con.sql(text).to_arrow_table()
+    # band edges: the smallest value of each tenth of the exposure, ties kept together
+    edges = [r[0] for r in con.execute(
+        f"WITH s AS (SELECT {column} AS x, sum(exposure) OVER (ORDER BY {column}, row "
+        f"ROWS UNBOUNDED PRECEDING) - exposure AS before, sum(exposure) OVER () AS tot "
+        f"FROM h WHERE {column} IS NOT NULL) SELECT min(x) FROM s GROUP BY "
+        f"least(CAST(floor({BANDS} * before / tot) AS INTEGER), {BANDS - 1}) ORDER BY 1"
+    ).fetchall()]
+    edges = sorted(set(edges))
+    index = " + ".join(f"CAST({column} >= {e!r} AS INTEGER)" for e in edges[1:]) or "0"
+    text = (f"SELECT min({column}) AS band_from, max({column}) AS band_to, count(*) AS rows, "
+            f"sum(exposure) AS exposure, sum(actual) AS actual, sum(expected) AS expected, "
+            f"sum(actual) / nullif(sum(expected), 0) AS actual_over_expected FROM h "
+            f"GROUP BY CASE WHEN {column} IS NULL THEN NULL ELSE {index} END "
+            f"ORDER BY 1 NULLS LAST")
+    return con.sql(text).to_arrow_table()
