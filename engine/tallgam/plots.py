@@ -170,7 +170,8 @@ def lorenz_figure(lorenz, gini: float):
                     alpha=0.6)
     ax.set_xlabel("share of exposure (lowest predicted rate first)")
     ax.set_ylabel("share of actual")
-    ax.set_title(f"Ordered Lorenz curve · Gini {gini:.3f}", loc="left", fontsize=11, color=INK)
+    ax.set_title(f"Ordered Lorenz curve · Gini {gini:.3f} (normalised)", loc="left",
+                 fontsize=11, color=INK)
     ax.set_aspect("equal")
     _style(ax)
     return fig

@@ -9,8 +9,10 @@ stays bounded whatever the number of rows. Definitions:
   exposure, else its weights, else 1 per row;
 * Gini from the ordered Lorenz curve (Frees, Meyers & Cummings 2011, JASA 106:1085):
   policies sorted by predicted rate μ/exposure, x = cumulative share of exposure,
-  y = cumulative share of actual; Gini = 1 − 2·(area under the curve), trapezoids over
-  groups of tied predictions. For a 0/1 response with unit exposure it equals 2·AUC − 1;
+  y = cumulative share of actual; the raw Gini is 1 − 2·(area under the curve),
+  trapezoids over groups of tied predictions. ``gini`` is the raw Gini divided by that of
+  the perfect ordering (policies sorted by their actual rate), so 1 is a perfect ranking
+  and 0 none; for a 0/1 response with unit exposure it equals 2·AUC − 1;
 * lift: ten bands of equal exposure by predicted rate; double lift: bands by the ratio
   of two models' predictions;
 * actual versus expected by band of every rating factor: levels for level columns, ten
@@ -46,7 +48,8 @@ class Validation:
     expected: float
     deviance: float
     null_deviance: float
-    gini: float
+    gini: float               # normalised: raw Gini / Gini of the perfect ordering
+    gini_raw: float           # 1 − 2·area under the ordered Lorenz curve
     lorenz: pa.Table
     lift: pa.Table
     actual_vs_expected: dict[str, pa.Table] = field(default_factory=dict)
@@ -69,7 +72,8 @@ class Validation:
             f"actual/expected {self.actual_over_expected:.4f}",
             f"  deviance {self.deviance:,.6g} against {self.null_deviance:,.6g} for a flat "
             f"rate: {100 * self.deviance_explained:.2f}% explained",
-            f"  Gini {self.gini:.4f}",
+            f"  Gini {self.gini:.4f} (1 = perfect ranking; ordered-Lorenz Gini "
+            f"{self.gini_raw:.4f})",
         ]
         if self.challenger_gini is not None:
             lines.append(f"  challenger: Gini {self.challenger_gini:.4f}, deviance "
@@ -187,7 +191,8 @@ def _tables(fit, path: str, sums: dict, challenger) -> Validation:
     rows, exposure, actual, expected = con.execute(
         "SELECT count(*), sum(exposure), sum(actual), sum(expected) FROM h").fetchall()[0]
     null_dev = _flat_rate_deviance(fit, con, actual / exposure)
-    gini = _gini(con, "rate")
+    gini_raw = _gini(con, "rate")
+    perfect = _gini(con, "actual / exposure")
     lorenz = _lorenz(con, "rate")
     lift = _bands_by(con, "rate", ["expected"])
     ave = {}
@@ -195,13 +200,14 @@ def _tables(fit, path: str, sums: dict, challenger) -> Validation:
         ave[c] = _actual_vs_expected(con, f'"f:{c}"', kind)
     val = Validation(rows=int(rows), exposure=float(exposure), actual=float(actual),
                      expected=float(expected), deviance=sums["deviance"],
-                     null_deviance=null_dev, gini=gini, lorenz=lorenz, lift=lift,
+                     null_deviance=null_dev, gini=gini_raw / perfect if perfect else np.nan,
+                     gini_raw=gini_raw, lorenz=lorenz, lift=lift,
                      actual_vs_expected=ave)
     if challenger is not None:
         con.execute("CREATE VIEW hb AS SELECT *, expected_b / exposure AS rate_b, "
                     "expected / expected_b AS ratio FROM h")
         val.double_lift = _bands_by(con, "ratio", ["expected", "expected_b"], view="hb")
-        val.challenger_gini = _gini(con, "rate_b", view="hb")
+        val.challenger_gini = _gini(con, "rate_b", view="hb") / perfect if perfect else np.nan
         val.challenger_deviance = sums["challenger_deviance"]
     return val
 
