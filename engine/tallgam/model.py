@@ -96,6 +96,9 @@ class Model:
             if per and per not in level_terms:
                 raise SpecError(f"{t.label} needs the level means too: add "
                                 f"tg.categorical({per!r}) to the terms")
+        if self.criterion == "fixed" and any(getattr(t, "select", False) for t in self.terms):
+            raise SpecError("select=True adds a penalty whose smoothing the criterion chooses; "
+                            "use criterion='reml' (a term's own smoothing= stays fixed)")
         if not (self.max_iterations >= 1):
             raise SpecError("max_iterations must be at least 1")
 

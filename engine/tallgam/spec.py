@@ -134,6 +134,10 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
     terms_raw = raw.get("term", [])
     if not isinstance(terms_raw, list):
         raise SpecError(f"{label}: terms are written as [[term]] tables")
+    base = os.path.dirname(os.path.abspath(path)) if path else os.getcwd()
+    for t in terms_raw:  # a neighbour file is found like the data: from the spec's folder
+        if isinstance(t, dict) and isinstance(t.get("neighbours"), str):
+            t["neighbours"] = _resolve(t["neighbours"], base)
     terms = [parse_term(t, i) for i, t in enumerate(terms_raw)]
     model_args = {k: v for k, v in raw.items() if k in MODEL_KEYS}
     fam = model_args.get("family")
@@ -149,7 +153,6 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
             raise SpecError(f"{label}: bad family parameters: {exc}") from None
     model = Model(terms=terms, **model_args)
     data = raw.get("data")
-    base = os.path.dirname(os.path.abspath(path)) if path else os.getcwd()
     if isinstance(data, str):
         data = _resolve(data, base)
     elif isinstance(data, list):

@@ -132,7 +132,16 @@ class SplineSpec(TermSpec):
     def build(self, profile: DataProfile) -> SplineBasis:
         knots = margin_knots(profile, self.column, self.size, self.knots, self.label)
         levels = [str(v) for v in profile[f"lev:{self.per}"].values] if self.per else None
-        return SplineBasis(self, knots, levels)
+        centred = not self.multiplier
+        if self.multiplier:
+            fm = profile[f"num:{self.multiplier}"]
+            if fm.min is not None and fm.min == fm.max:  # f(x)·c overlaps the intercept
+                centred = True
+                warnings.warn(TallgamWarning(
+                    f"{self.label}: the multiplier {self.multiplier!r} is {fm.min:g} on every "
+                    "row, so the uncentred curve would repeat the intercept; it is centred like "
+                    "an ordinary spline"), stacklevel=2)
+        return SplineBasis(self, knots, levels, centred=centred)
 
 
 @dataclass(frozen=True)
@@ -646,10 +655,13 @@ class SplineBasis(Basis):
 
     width = bs.ORDER
 
-    def __init__(self, spec: SplineSpec, knots: np.ndarray, levels: list[str] | None = None):
+    def __init__(self, spec: SplineSpec, knots: np.ndarray, levels: list[str] | None = None,
+                 centred: bool | None = None):
         super().__init__(spec)
         self.knots = np.asarray(knots, dtype=np.float64)
         self.levels = list(levels) if levels is not None else None
+        # a multiplier's curve f(x)·z is not centred, unless z is constant in the data
+        self.centred = not spec.multiplier if centred is None else bool(centred)
         self._value_set = pa.array(self.levels, type=pa.string()) if levels else None
         self.selection = bool(spec.select)
 
@@ -701,7 +713,7 @@ class SplineBasis(Basis):
         return out
 
     def constraint(self, colsum):
-        if self.spec.multiplier:  # f(x)·z is identifiable without centring
+        if not self.centred:  # f(x)·z is identifiable without centring
             return np.eye(self.n_raw)
         k = self.size
         return _block_diag([sum_to_zero(colsum[j * k:(j + 1) * k]) for j in range(self.n_blocks)])
@@ -726,6 +738,8 @@ class SplineBasis(Basis):
         out = {"spec": self.spec.to_dict(), "knots": self.knots.tolist()}
         if self.levels:
             out["levels"] = self.levels
+        if self.spec.multiplier:
+            out["centred"] = self.centred
         return out
 
 
@@ -937,10 +951,15 @@ class AdjacencyBasis(LevelBasis):
                                 if not has_data[self.part == p].any()]
             if self.n_parts > 1 or self.islands:
                 sizes = np.bincount(self.part)
+                order = np.argsort(-sizes, kind="stable")
+                apart = [f"[{_few([self.levels[i] for i in np.flatnonzero(self.part == p)], 4)}]"
+                         for p in order[1:6]]
                 warnings.warn(TallgamWarning(
                     f"{self.label}: the neighbour graph has {self.n_parts} separate parts "
                     f"(sizes {', '.join(str(s) for s in sorted(sizes, reverse=True)[:8])}"
                     f"{', ...' if len(sizes) > 8 else ''}); each part keeps its own level"
+                    + (f"; apart from the largest part: {', '.join(apart)}"
+                       f"{', ...' if self.n_parts > 6 else ''}" if apart else "")
                     + (f"; {len(self.islands)} island(s) without neighbours are not smoothed"
                        f" ({_few(self.islands, 5)})" if self.islands else "")
                     + (f"; {len(self.empty_parts)} part(s) have no data and are held at 0"
@@ -993,7 +1012,7 @@ def basis_from_dict(d: dict) -> Basis:
         return InterceptBasis()
     spec = spec_from_dict(spec_d)
     if isinstance(spec, SplineSpec):
-        return SplineBasis(spec, np.asarray(d["knots"]), d.get("levels"))
+        return SplineBasis(spec, np.asarray(d["knots"]), d.get("levels"), d.get("centred"))
     if isinstance(spec, CyclicSpec):
         return CyclicBasis(spec, np.asarray(d["knots"]), float(d["period"]))
     if isinstance(spec, SurfaceSpec):
