@@ -90,14 +90,14 @@ def effect_figure(table, label: str, *, log_link: bool):
         width = np.min(np.diff(np.unique(pos))) * 0.8 if numeric and len(np.unique(pos)) > 1 \
             else 0.8
         bar.bar(pos, weight, width=width, color=MUTED, alpha=0.7)
-    bar.set_ylabel("training\nweight", fontsize=8)
+    bar.set_ylabel("training\nweight", fontsize=8, labelpad=2)
     bar.set_xlabel(key)
     _style(bar)
     if not numeric:
         bar.set_xticks(np.arange(len(x_all)))
         bar.set_xticklabels([str(v) for v in x_all], rotation=45 if len(x_all) > 8 else 0,
                             ha="right" if len(x_all) > 8 else "center", fontsize=8)
-    fig.subplots_adjust(left=0.12, right=0.97, top=0.92, bottom=0.16)
+    fig.subplots_adjust(left=0.14, right=0.97, top=0.92, bottom=0.16)
     return fig
 
 
