@@ -6,7 +6,8 @@ Raw coefficients β (as the kernels see them) and free coefficients γ are linke
 dropped for categoricals, identity elsewhere; a penalized term's free coordinates are
 then turned to the eigenvectors of its penalty, null space first (:func:`penalty_coordinates`).
 The constraint is fixed from the column sums of the first data pass and kept for every
-later pass.
+later pass. A random effect with many levels is left out of Z and eliminated from the
+working problem by its Schur complement (see :mod:`tallgam.smoothing`).
 """
 
 from __future__ import annotations
@@ -14,69 +15,148 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
+from .covariance import Covariance
 from .design import Design
 from .errors import FitError
-from .smoothing import PenaltyBlock, WorkingProblem, null_eigenvalues
+from .smoothing import EliminatedBlock, PenaltyBlock, Solution, WorkingProblem, null_eigenvalues
 from .state import PassState
+from .terms import RandomEffectBasis
+
+ELIMINATE_LEVELS = 200  # a random effect with at least this many levels is eliminated
 
 
 class Constraints:
-    """Z and the penalties in free coordinates, for one design."""
+    """Z and the penalties in free coordinates, for one design.
 
-    def __init__(self, design: Design, colsum: np.ndarray):
+    The largest random effect with at least ``eliminate_from`` levels (None: the module's
+    :data:`ELIMINATE_LEVELS`; 0: never) is *eliminated*: its free coefficients are its raw
+    ones (Z_e = I, penalty λ·I), they come last in free coordinates and its λ last, and the
+    working problem carries it as an :class:`EliminatedBlock`, so nothing of size L × L is
+    formed. ``Z`` then maps the ``kept`` raw columns to the kept free ones. GCV and UBRE
+    work on the full problem, so only REML and fixed smoothing eliminate.
+    """
+
+    def __init__(self, design: Design, colsum: np.ndarray, criterion: str = "reml",
+                 eliminate_from: int | None = None):
         self.design = design
-        zs, penalties = [], []
-        for b, sl in zip(design.bases, design.slices):
+        if eliminate_from is None:
+            eliminate_from = ELIMINATE_LEVELS
+        self.eliminated = (_eliminated_basis(design, eliminate_from)
+                           if criterion in ("reml", "fixed") else None)
+        kept_bases = [j for j in range(len(design.bases)) if j != self.eliminated]
+        zs, penalties = {}, {}
+        for j in kept_bases:
+            b, sl = design.bases[j], design.slices[j]
             z, mats = penalty_coordinates(b.constraint(colsum[sl]), b.penalties())
             if b.selection and mats:  # Marra & Wood (2011): penalize the null space too
                 null = np.all(sum(np.abs(m) for m in mats) == 0, axis=0)
                 if null.any():
                     mats = mats + [np.diag(null.astype(np.float64))]
-            zs.append(z)
-            penalties.append(mats)
-        self.Z = linalg.block_diag(*zs) if zs else np.zeros((0, 0))
+            zs[j] = z
+            penalties[j] = mats
         # block_diag follows bases order; raw order is dense group first, then levels
-        order = np.concatenate([np.arange(sl.start, sl.stop) for sl in design.slices])
-        Z = np.zeros_like(self.Z)
-        Z[order, :] = self.Z
+        order = np.concatenate([np.arange(design.slices[j].start, design.slices[j].stop)
+                                for j in kept_bases]).astype(np.int64)
+        self.kept = np.sort(order)
+        Z = np.zeros((len(order), sum(z.shape[1] for z in zs.values())))
+        Z[np.searchsorted(self.kept, order), :] = (
+            linalg.block_diag(*zs.values()) if zs else np.zeros((0, 0)))
         self.Z = Z
-        self.free_slices: list[slice] = []
+        self.free_slices: list[slice] = [slice(0, 0)] * len(design.bases)
         off = 0
-        for z in zs:
-            self.free_slices.append(slice(off, off + z.shape[1]))
-            off += z.shape[1]
+        for j in kept_bases:
+            self.free_slices[j] = slice(off, off + zs[j].shape[1])
+            off += zs[j].shape[1]
+        self.n_kept = off
+        if self.eliminated is not None:
+            size = design.bases[self.eliminated].n_raw
+            self.free_slices[self.eliminated] = slice(off, off + size)
+            off += size
         self.n_free = off
         self.blocks: list[PenaltyBlock] = []
         self.fixed: list[float | None] = []
         self.penalty_owner: list[int] = []  # basis index of every penalty
         first = 0
-        for j, (b, mats, fsl) in enumerate(zip(design.bases, penalties, self.free_slices)):
+        for j in kept_bases:
+            b, mats = design.bases[j], penalties[j]
             if not mats:
                 continue
-            self.blocks.append(PenaltyBlock(sl=fsl, matrices=mats, first=first))
+            self.blocks.append(PenaltyBlock(sl=self.free_slices[j], matrices=mats, first=first))
             fixed = b.fixed_smoothing()
             self.fixed.extend(fixed + [None] * (len(mats) - len(fixed)))
             self.penalty_owner.extend([j] * len(mats))
             first += len(mats)
+        if self.eliminated is not None:
+            # its penalties() would be an L × L identity: read the fixed λ from the spec
+            self.fixed.append(getattr(design.bases[self.eliminated].spec, "smoothing", None))
+            self.penalty_owner.append(self.eliminated)
+
+    @property
+    def eliminated_raw(self) -> slice | None:
+        """Raw columns of the eliminated term (None when nothing is eliminated)."""
+        return None if self.eliminated is None else self.design.slices[self.eliminated]
 
     def to_free(self, beta: np.ndarray) -> np.ndarray:
-        return self.Z.T @ beta
+        if self.eliminated is None:
+            return self.Z.T @ beta
+        return np.concatenate([self.Z.T @ beta[self.kept], beta[self.eliminated_raw]])
 
     def to_raw(self, gamma: np.ndarray) -> np.ndarray:
-        return self.Z @ gamma
+        if self.eliminated is None:
+            return self.Z @ gamma
+        beta = np.zeros(self.design.p)
+        beta[self.kept] = self.Z @ gamma[:self.n_kept]
+        beta[self.eliminated_raw] = gamma[self.n_kept:]
+        return beta
 
-    def raw_covariance(self, cov_free: np.ndarray) -> np.ndarray:
-        return self.Z @ cov_free @ self.Z.T
+    def covariance(self, sol: Solution, scale: float) -> Covariance:
+        """The Bayesian covariance φ·ZH⁻¹Zᵀ of the raw coefficients; with an eliminated
+        term only its diagonal and its cross block with the kept columns."""
+        kept = self.Z @ (sol.H_inv * scale) @ self.Z.T
+        if self.eliminated is None:
+            return Covariance(kept)
+        inv = sol.eliminated  # H⁻¹_ek = −GM⁻¹, and Z_e = I
+        return Covariance(kept, eliminated=self.eliminated_raw, diag=scale * inv.diagonal(),
+                          cross=-scale * (inv.GMi @ self.Z.T))
+
+    def penalty_value(self, lam, beta: np.ndarray) -> float:
+        """βᵀS_λβ, formed block by block in free coordinates, where each single penalty is
+        diagonal: a sum of non-negative terms, accurate even when λ is near its bound (the
+        same product in raw coordinates cancels to a few digits)."""
+        if lam is None or len(lam) == 0:
+            return 0.0
+        gamma = self.to_free(beta)
+        total = 0.0
+        for blk in self.blocks:
+            g = gamma[blk.sl]
+            for j, m in enumerate(blk.matrices):
+                total += lam[blk.first + j] * float(g @ m @ g)
+        if self.eliminated is not None:
+            g = gamma[self.n_kept:]
+            total += lam[-1] * float(g @ g)
+        return total
 
     def problem(self, state: PassState, anchor_beta: np.ndarray, scale: float | None
                 ) -> WorkingProblem:
         d = self.design
-        gram = state.gram(_level_offsets(d), [b.n_raw for b in d.levels])
-        A = self.Z.T @ gram @ self.Z
-        u = self.Z.T @ state.rhs
-        return WorkingProblem(A=0.5 * (A + A.T), u=u, e=state.scalars["resid_ss"],
-                              anchor=self.to_free(anchor_beta), blocks=self.blocks,
-                              n=state.scalars["rows"], scale=scale)
+        offsets, sizes = _level_offsets(d), [b.n_raw for b in d.levels]
+        if self.eliminated is None:
+            gram = state.gram(offsets, sizes)
+            A = self.Z.T @ gram @ self.Z
+            u = self.Z.T @ state.rhs
+            return WorkingProblem(A=0.5 * (A + A.T), u=u, e=state.scalars["resid_ss"],
+                                  anchor=self.to_free(anchor_beta), blocks=self.blocks,
+                                  n=state.scalars["rows"], scale=scale)
+        term = d.levels.index(d.bases[self.eliminated])
+        A = self.Z.T @ state.gram(offsets, sizes, skip=term) @ self.Z
+        diag, cross, rhs = state.level_block(term, offsets, sizes)
+        anchor = self.to_free(anchor_beta)
+        block = EliminatedBlock(d=diag, C=cross @ self.Z, u=rhs, anchor=anchor[self.n_kept:],
+                                index=len(self.fixed) - 1)
+        return WorkingProblem(A=0.5 * (A + A.T), u=self.Z.T @ state.rhs[self.kept],
+                              e=state.scalars["resid_ss"], anchor=anchor[:self.n_kept],
+                              blocks=self.blocks, n=state.scalars["rows"], scale=scale,
+                              eliminated=block)
 
     def check_identifiable(self, problem: WorkingProblem) -> None:
         """FitError naming the terms involved when some coefficients are undetermined
@@ -88,6 +168,10 @@ class Constraints:
             for m in blk.matrices:
                 S[blk.sl, blk.sl] += m * (a / (np.linalg.norm(m) or 1.0))
         M = A + S
+        el = problem.eliminated
+        if el is not None:  # its ridge makes it determined: check the Schur complement
+            h = el.d + (np.linalg.norm(el.d) or 1.0) / np.sqrt(el.size)
+            M = M - el.C.T @ (el.C / h[:, None])
         d = np.sqrt(np.abs(np.diag(M)))
         bad_cols = np.flatnonzero(d == 0)
         d[d == 0] = 1.0
@@ -135,6 +219,15 @@ def penalty_coordinates(z: np.ndarray, penalties: list[np.ndarray]
         full[k:, k:] = r
         out.append(full)
     return z @ vecs, out
+
+
+def _eliminated_basis(design: Design, eliminate_from: int | None) -> int | None:
+    """Index of the largest random effect with at least ``eliminate_from`` levels."""
+    if not eliminate_from:
+        return None
+    sizes = {j: b.n_raw for j, b in enumerate(design.bases)
+             if isinstance(b, RandomEffectBasis) and b.n_raw >= eliminate_from}
+    return max(sizes, key=sizes.get) if sizes else None
 
 
 def _level_offsets(d: Design) -> list[int]:

@@ -373,7 +373,7 @@ class _Run:
             t_pass = time.perf_counter()
             state = self.data_pass(beta, accepted[0] if accepted else None)
             if constraints is None:
-                constraints = Constraints(design, state.colsum)
+                constraints = Constraints(design, state.colsum, model.criterion)
             dev = state.scalars["deviance"]
             rows = int(state.scalars["rows"])
             if beta is None:
@@ -536,18 +536,8 @@ def _rho_of(lam, problem, constraints) -> np.ndarray:
 
 
 def _penalty_value(constraints: Constraints, lam, beta: np.ndarray) -> float:
-    """βᵀS_λβ, formed block by block in free coordinates, where each single penalty is
-    diagonal: a sum of non-negative terms, accurate even when λ is near its bound (the
-    same product in raw coordinates cancels to a few digits)."""
-    if lam is None or len(lam) == 0:
-        return 0.0
-    gamma = constraints.to_free(beta)
-    total = 0.0
-    for blk in constraints.blocks:
-        g = gamma[blk.sl]
-        for j, m in enumerate(blk.matrices):
-            total += lam[blk.first + j] * float(g @ m @ g)
-    return total
+    """βᵀS_λβ (see :meth:`Constraints.penalty_value`)."""
+    return constraints.penalty_value(lam, beta)
 
 
 def _scale_estimate(state, sol, scale_known, exact) -> float:

@@ -124,3 +124,48 @@ def quadratic_form_rows(idx, val, lev, pd, cov, out):
                 if l2 >= 0:
                     s += cov[gk, pd + l2]
         out[i] = s
+
+
+@numba.njit(cache=True, parallel=True)
+def quadratic_form_rows_eliminated(idx, val, lev, pd, position, cov, e_start, e_diag, e_cross,
+                                   out):
+    """out[i] = xᵢᵀ V xᵢ when one level term's covariance is kept structured (shape (n,)).
+
+    ``position`` (p,) maps a raw column to its row of ``cov`` (the kept columns' covariance)
+    or −1 for a level of the eliminated term, whose raw columns start at ``e_start``;
+    ``e_diag`` (L,) are its levels' variances and ``e_cross`` (L × k) their covariances with
+    the kept columns. A row touches one level of that term, so nothing more is needed.
+    """
+    n, q = idx.shape
+    m = lev.shape[1]
+    for i in numba.prange(n):
+        s = 0.0
+        for a in range(q):
+            ia = position[idx[i, a]]
+            va = val[i, a]
+            for b in range(q):
+                s += va * cov[ia, position[idx[i, b]]] * val[i, b]
+        le = -1
+        for k in range(m):
+            lk = lev[i, k]
+            if lk < 0:
+                continue
+            gk = position[pd + lk]
+            if gk < 0:
+                le = pd + lk - e_start
+                continue
+            for a in range(q):
+                s += 2.0 * cov[gk, position[idx[i, a]]] * val[i, a]
+            for k2 in range(m):
+                l2 = lev[i, k2]
+                if l2 >= 0 and position[pd + l2] >= 0:
+                    s += cov[gk, position[pd + l2]]
+        if le >= 0:
+            s += e_diag[le]
+            for a in range(q):
+                s += 2.0 * e_cross[le, position[idx[i, a]]] * val[i, a]
+            for k in range(m):
+                lk = lev[i, k]
+                if lk >= 0 and position[pd + lk] >= 0:
+                    s += 2.0 * e_cross[le, position[pd + lk]]
+        out[i] = s

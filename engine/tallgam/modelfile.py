@@ -1,18 +1,25 @@
 """The model file: versioned JSON holding everything needed to score and to explain.
 
-Layout (``schema_version`` 1)::
+Layout (``schema_version`` 2)::
 
-    {"format": "tallgam-model", "schema_version": 1,
+    {"format": "tallgam-model", "schema_version": 1 | 2,
      "model": {...Model.to_dict()...},
      "terms": [{"spec": {...}, "knots"/"levels"/"centre"...}, ...],   # intercept first
      "coefficients": [...],            # raw, one per basis column
-     "covariance": [[...], ...],       # raw, Bayesian, scale included
+     "covariance": {                   # raw, Bayesian, scale included
+        "dense": ARRAY,                # all columns, or all but an eliminated term's
+        "eliminated": null | {"columns": [start, stop], "diag": ARRAY, "cross": ARRAY}},
      "edf": {...}, "smoothing": {...}, "statistics": {...},
      "profile": {...}, "history": [...], "notes": [...], "provenance": {...}}
 
-Floats are written with Python's shortest round-trip repr, so a loaded model predicts
-bit for bit as the saved one. Loading validates the structure and the version and
-refuses anything else; nothing in the file is ever executed.
+ARRAY is {"dtype": "float64", "shape": [...], "base64": ...}, the little-endian bytes
+(see :class:`tallgam.covariance.Covariance`): compact for covariances with many thousand
+entries, and exact. A file is written at the oldest version that holds it: a plain
+covariance of at most :data:`LIST_COLUMNS` columns as version 1 (the covariance a p × p list
+of lists, as earlier releases wrote and read it), anything else as version 2. Other floats
+are written with Python's shortest round-trip repr, so a loaded model predicts bit for bit
+as the saved one. Loading validates the structure and the version and refuses anything
+else; nothing in the file is ever executed.
 """
 
 from __future__ import annotations
@@ -24,22 +31,27 @@ import tempfile
 
 import numpy as np
 
+from .covariance import Covariance
 from .errors import ModelFileError, TallgamError
 
 FORMAT = "tallgam-model"
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+READABLE_VERSIONS = (1, 2)
+LIST_COLUMNS = 1000  # larger covariances are written as encoded arrays (version 2)
 _REQUIRED = ("model", "terms", "coefficients", "covariance", "edf", "smoothing",
              "statistics", "profile")
 
 
 def to_dict(fit) -> dict:
+    cov = fit.covariance
+    as_list = not cov.structured and cov.p <= LIST_COLUMNS
     return {
         "format": FORMAT,
-        "schema_version": SCHEMA_VERSION,
+        "schema_version": 1 if as_list else SCHEMA_VERSION,
         "model": fit.model.to_dict(),
         "terms": [b.to_dict() for b in fit.bases],
         "coefficients": fit.coefficients_raw.tolist(),
-        "covariance": fit.covariance_raw.tolist(),
+        "covariance": cov.dense.tolist() if as_list else cov.to_dict(),
         "edf": fit.edf,
         "smoothing": fit.smoothing,
         "statistics": fit.statistics,
@@ -98,6 +110,7 @@ def load(path):
 
 
 def from_dict(data: dict, where: str = "the model file"):
+    from .design import Design
     from .model import Model
     from .result import FitResult
     from .terms import basis_from_dict
@@ -105,10 +118,11 @@ def from_dict(data: dict, where: str = "the model file"):
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise ModelFileError(f"{where} is not a tallgam model file (no format {FORMAT!r})")
     version = data.get("schema_version")
-    if version != SCHEMA_VERSION:
+    if version not in READABLE_VERSIONS:
         raise ModelFileError(
-            f"{where} has schema version {version!r}; this tallgam reads version "
-            f"{SCHEMA_VERSION}. Refit the model or use the tallgam release that wrote it.")
+            f"{where} has schema version {version!r}; this tallgam reads versions "
+            f"{', '.join(map(str, READABLE_VERSIONS))}. Refit the model or use the tallgam "
+            "release that wrote it.")
     missing = [k for k in _REQUIRED if k not in data]
     if missing:
         raise ModelFileError(f"{where} lacks the section(s) {', '.join(missing)}")
@@ -116,16 +130,28 @@ def from_dict(data: dict, where: str = "the model file"):
         model = Model.from_dict(data["model"])
         bases = [basis_from_dict(t) for t in data["terms"]]
         beta = np.asarray(data["coefficients"], dtype=np.float64)
-        cov = np.asarray(data["covariance"], dtype=np.float64)
+        cov = _covariance(data["covariance"], version)
     except (TallgamError, KeyError, TypeError, ValueError) as exc:
         raise ModelFileError(f"{where} is inconsistent: {exc}") from None
     p = sum(b.n_raw for b in bases)
     if beta.shape != (p,) or cov.shape != (p, p):
         raise ModelFileError(f"{where} is inconsistent: its terms have {p} coefficients but it "
                              f"holds {beta.shape[0]} and a {cov.shape} covariance")
+    if cov.structured and cov.eliminated not in Design(bases).slices:
+        raise ModelFileError(f"{where} is inconsistent: the covariance's eliminated columns "
+                             "are not those of a term")
     if [b.spec.label for b in bases[1:]] != [t.label for t in model.terms]:
         raise ModelFileError(f"{where} is inconsistent: the terms do not match the model")
     return FitResult(model, bases, beta, cov, data["edf"], data["smoothing"],
                      data["statistics"], data["profile"], data.get("history", []),
                      data.get("notes", []), data.get("provenance", {}),
                      data.get("expressions", {}))
+
+
+def _covariance(section, version: int) -> Covariance:
+    """The covariance section: a p × p list of lists (version 1) or encoded arrays."""
+    if version == 1:
+        return Covariance(np.asarray(section, dtype=np.float64))
+    if not isinstance(section, dict) or "dense" not in section:
+        raise ValueError("the covariance section lacks its dense block")
+    return Covariance.from_dict(section)

@@ -70,8 +70,9 @@ class FitResult:
             edf[b.label] = float(np.sum(sol.edf[fsl]))
         edf["total"] = float(np.sum(sol.edf))
         smoothing: dict = {}
-        for k, owner in enumerate(cons.penalty_owner):
-            label = design.bases[owner].label
+        # in terms order (an eliminated random effect's λ comes last in sol.lam)
+        for k in sorted(range(len(cons.penalty_owner)), key=lambda k: cons.penalty_owner[k]):
+            label = design.bases[cons.penalty_owner[k]].label
             smoothing.setdefault(label, []).append(float(sol.lam[k]))
         smoothing = {k: (v[0] if len(v) == 1 else v) for k, v in smoothing.items()}
         sc = fs.state.scalars

@@ -76,7 +76,7 @@ class Scorer:
         ``se`` their standard errors ``link_se``/``response_se``; with ``terms`` one array
         per term label (the centred contribution on the link scale)."""
         link = self.fit.model.link
-        cov = self.fit.covariance_raw if se else None
+        cov = self.fit.covariance if se else None
         for batch in self.source.batches(self.select, None,
                                          batch_rows):
             cols = batch_columns(batch.select(range(len(self.inputs.select))),
@@ -94,8 +94,7 @@ class Scorer:
                 eta[sl] += seg
                 if se:
                     v = np.empty(len(seg))
-                    kernels.quadratic_form_rows(enc.idx, enc.val, enc.lev, self.design.pd, cov,
-                                                v)
+                    cov.row_variances(enc, self.design.pd, v)
                     var[sl] = v
                 if terms:
                     self._term_parts(enc, sl, parts)

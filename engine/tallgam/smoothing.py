@@ -20,6 +20,17 @@ differences of the gradient, on an eigen-modified Hessian with step control, so 
 optimum is found to near machine precision and is reproducible. log|S_λ|₊ is taken block
 by block (one block per term), which keeps it stable when the λ of different terms differ
 by many orders of magnitude.
+
+A ridge-penalized block with many levels (a random effect: every row hits one of its
+levels, so its block of A is diagonal) can be *eliminated*: with h = d + λ_e its diagonal,
+C = A_ek its cross products with the other ("kept") coefficients and
+M = H_kk − Cᵀdiag(1/h)C the Schur complement,
+
+    γ_k = M⁻¹(b_k − Cᵀ(b_e/h)),  γ_e = (b_e − Cγ_k)/h,  log|H| = Σ log h + log|M|,
+    H⁻¹ = [[M⁻¹, −M⁻¹Gᵀ], [−GM⁻¹, diag(1/h) + GM⁻¹Gᵀ]],  G = diag(1/h)C,
+
+so every quantity the criteria need costs O(L·p_k²) for L levels and p_k kept
+coefficients, and no L × L array is formed.
 """
 
 from __future__ import annotations
@@ -116,11 +127,36 @@ class PenaltyBlock:
 
 
 @dataclass
+class EliminatedBlock:
+    """A block of L coefficients with a diagonal data block and penalty λ_e·I, solved by
+    its Schur complement (see the module docstring). In free coordinates it comes after
+    the kept coefficients, and its smoothing parameter after the kept penalties.
+
+    d (L,) = diag(A_ee), C (L × p_k) = A_ek, u (L,) and anchor (L,) its parts of u and γ_a.
+    """
+
+    d: np.ndarray
+    C: np.ndarray
+    u: np.ndarray
+    anchor: np.ndarray
+    index: int  # of its smoothing parameter in λ: the last one
+
+    @property
+    def size(self) -> int:
+        return len(self.d)
+
+    def logdet(self, lam: np.ndarray) -> tuple[float, float]:
+        """log|λ_e I|₊ = L·log λ_e and its derivative in log λ_e (the second is zero)."""
+        return self.size * float(np.log(max(lam[self.index], 1e-300))), float(self.size)
+
+
+@dataclass
 class WorkingProblem:
     """The working model in constrained coordinates.
 
     A (p × p) = ZᵀXᵀWXZ, u (p,) = ZᵀXᵀW r, e = rᵀWr, all at the anchor γ_a (p,);
-    ``blocks`` lists every term's penalties; ``n`` is the number of rows.
+    ``blocks`` lists every term's penalties; ``n`` is the number of rows. With
+    ``eliminated``, A, u, anchor and blocks cover the kept coefficients only (p = p_k).
     """
 
     A: np.ndarray
@@ -130,10 +166,11 @@ class WorkingProblem:
     blocks: list[PenaltyBlock]
     n: float
     scale: float | None = None  # known φ; None when it must be estimated
+    eliminated: EliminatedBlock | None = None
 
     @property
     def n_penalties(self) -> int:
-        return sum(len(b.matrices) for b in self.blocks)
+        return sum(len(b.matrices) for b in self.blocks) + (self.eliminated is not None)
 
     @property
     def null_dim(self) -> int:
@@ -155,8 +192,8 @@ class Solution:
     """The penalized fit at given λ, with what inference needs."""
 
     lam: np.ndarray
-    gamma: np.ndarray
-    H_inv: np.ndarray
+    gamma: np.ndarray         # (p,) all free coefficients, eliminated ones last
+    H_inv: np.ndarray         # (p_k × p_k) the kept block of H⁻¹ (all of it when p_k = p)
     deviance: float           # working-model D
     penalized: float          # D_p
     edf: np.ndarray           # diag(H⁻¹A) per coefficient
@@ -167,6 +204,27 @@ class Solution:
     iterations: int = 0
     converged: bool = True
     notes: list[str] = field(default_factory=list)
+    eliminated: EliminatedInverse | None = None
+
+
+@dataclass
+class EliminatedInverse:
+    """The rest of H⁻¹ when a block is eliminated: h (L,) = d + λ_e, G (L × p_k) =
+    diag(1/h)C and GM⁻¹ (L × p_k), so H⁻¹_ek = −GM⁻¹ and H⁻¹_ee = diag(1/h) + GM⁻¹Gᵀ,
+    whose diagonal is 1/h + ``spread``, spread (L,) = diag(GM⁻¹Gᵀ)."""
+
+    h: np.ndarray
+    G: np.ndarray
+    GMi: np.ndarray
+    spread: np.ndarray = None
+
+    def __post_init__(self):
+        if self.spread is None:
+            self.spread = np.einsum("ij,ij->i", self.GMi, self.G)
+
+    def diagonal(self) -> np.ndarray:
+        """diag(H⁻¹_ee) (L,)."""
+        return 1.0 / self.h + self.spread
 
 
 def factor(H: np.ndarray) -> tuple[np.ndarray, float]:
@@ -190,6 +248,9 @@ def solve(problem: WorkingProblem, lam: np.ndarray) -> Solution:
     """γ̂ and its by-products at fixed λ (length = number of penalties)."""
     A, u = problem.A, problem.u
     S = problem.penalty(lam)
+    log_det_S = sum(blk.logdet(lam)[0] for blk in problem.blocks)
+    if problem.eliminated is not None:
+        return _solve_eliminated(problem, lam, S, log_det_S)
     H_inv, log_det_H = factor(A + S)
     b = A @ problem.anchor + u
     gamma = H_inv @ b
@@ -197,10 +258,39 @@ def solve(problem: WorkingProblem, lam: np.ndarray) -> Solution:
     dev = float(problem.e - 2.0 * delta @ u + delta @ A @ delta)
     dev = max(dev, 0.0)
     pen = float(gamma @ S @ gamma)
-    log_det_S = sum(blk.logdet(lam)[0] for blk in problem.blocks)
     edf = np.einsum("ij,ji->i", H_inv, A)
     return Solution(lam=lam, gamma=gamma, H_inv=H_inv, deviance=dev, penalized=dev + pen,
                     edf=edf, log_det_H=log_det_H, log_det_S=log_det_S)
+
+
+def _solve_eliminated(problem: WorkingProblem, lam: np.ndarray, S: np.ndarray,
+                      log_det_S: float) -> Solution:
+    """:func:`solve` with the eliminated block taken out by its Schur complement:
+    O(L·p_k²) time and O(L·p_k) memory (see the module docstring)."""
+    A, u, el = problem.A, problem.u, problem.eliminated
+    lam_e = lam[el.index]
+    h = el.d + lam_e
+    G = el.C / h[:, None]
+    Ms = A - el.C.T @ G                      # Schur complement of the data part
+    M_inv, log_det_M = factor(0.5 * (Ms + Ms.T) + S)
+    a_k, a_e = problem.anchor, el.anchor
+    b_k = A @ a_k + el.C.T @ a_e + u
+    b_e = el.C @ a_k + el.d * a_e + el.u
+    g_k = M_inv @ (b_k - G.T @ b_e)
+    g_e = (b_e - el.C @ g_k) / h
+    dk, de = g_k - a_k, g_e - a_e
+    quad = dk @ A @ dk + 2.0 * de @ (el.C @ dk) + de @ (el.d * de)
+    dev = max(float(problem.e - 2.0 * (dk @ u + de @ el.u) + quad), 0.0)
+    pen = float(g_k @ S @ g_k) + lam_e * float(g_e @ g_e)
+    GMi = G @ M_inv
+    r = np.einsum("ij,ij->i", GMi, el.C)     # diag(GM⁻¹Cᵀ) = h·diag(GM⁻¹Gᵀ)
+    # diag(H⁻¹A): kept M⁻¹(A_kk − CᵀG); eliminated (d − λ_e·diag(GM⁻¹Cᵀ))/h
+    edf = np.concatenate([np.einsum("ij,ji->i", M_inv, Ms), (el.d - lam_e * r) / h])
+    return Solution(lam=lam, gamma=np.concatenate([g_k, g_e]), H_inv=M_inv, deviance=dev,
+                    penalized=dev + pen, edf=edf,
+                    log_det_H=log_det_M + float(np.sum(np.log(h))),
+                    log_det_S=log_det_S + el.logdet(lam)[0],
+                    eliminated=EliminatedInverse(h=h, G=G, GMi=GMi, spread=r / h))
 
 
 class _Criterion:
@@ -216,6 +306,8 @@ class _Criterion:
         self.scale = problem.scale
         if name == "ubre" and self.scale is None:
             raise FitError("UBRE needs a known scale; use criterion='gcv' or 'reml'")
+        if name != "reml" and problem.eliminated is not None:
+            raise FitError(f"{name.upper()} works on the full problem; eliminate no block")
 
     def lam(self, rho: np.ndarray) -> np.ndarray:
         lam = self.base.copy()
@@ -268,7 +360,7 @@ class _Criterion:
         prob = self.p
         g, Hi = sol.gamma, sol.H_inv
         pens = prob.penalty_list()
-        k = len(pens)
+        k = prob.n_penalties
         n, m0 = prob.n, prob.null_dim
         ld_val = 0.0
         ld_grad = np.zeros(k)
@@ -280,12 +372,20 @@ class _Criterion:
             ld_grad[r] = gr
             ld_hess[r, r] = he
         sg = [m @ g[sl] for sl, m in pens]                        # S_j γ̂ on its block
-        dp1 = np.array([lam[j] * g[sl] @ sg[j] for j, (sl, _) in enumerate(pens)])
-        tr1 = np.array([lam[j] * np.sum(Hi[sl, sl] * m) for j, (sl, m) in enumerate(pens)])
+        dp1 = np.zeros(k)
+        tr1 = np.zeros(k)
+        dp1[:len(pens)] = [lam[j] * g[sl] @ sg[j] for j, (sl, _) in enumerate(pens)]
+        tr1[:len(pens)] = [lam[j] * np.sum(Hi[sl, sl] * m) for j, (sl, m) in enumerate(pens)]
+        if prob.eliminated is not None:
+            ld_val += prob.eliminated.logdet(lam)[0]
+            ld_grad[-1] = prob.eliminated.logdet(lam)[1]
+            dp1[-1], tr1[-1] = _eliminated_first(sol, lam)
         dp2 = np.diag(dp1)
         tr2 = np.diag(tr1)
+        if prob.eliminated is not None:
+            _eliminated_second(sol, lam, pens, sg, dp2, tr2)
         for i, (sli, mi) in enumerate(pens):
-            for j in range(i, k):
+            for j in range(i, len(pens)):
                 slj, mj = pens[j]
                 cross = Hi[sli, slj]
                 q = lam[i] * lam[j] * float(sg[i] @ cross @ sg[j])
@@ -322,6 +422,45 @@ class _Criterion:
         if self.name == "gcv":
             return self.p.n / max(abs(value), 1e-300)
         return self.p.n / self.scale
+
+
+def _eliminated_first(sol: Solution, lam: np.ndarray) -> tuple[float, float]:
+    """λ_e γ_eᵀγ_e and λ_e tr(H⁻¹_ee) = λ_e(Σ1/h + tr(M⁻¹GᵀG)): the eliminated block's
+    entries of the first derivatives of D_p and log|H|."""
+    inv = sol.eliminated
+    lam_e = lam[-1]
+    g_e = sol.gamma[len(sol.gamma) - len(inv.h):]
+    return lam_e * float(g_e @ g_e), lam_e * float(np.sum(inv.diagonal()))
+
+
+def _eliminated_second(sol: Solution, lam: np.ndarray, pens: list, sg: list,
+                       dp2: np.ndarray, tr2: np.ndarray) -> None:
+    """Subtract the eliminated block's row and column (index −1) of the second-derivative
+    terms 2λ_iλ_e (S_iγ̂)ᵀH⁻¹(S_eγ̂) and λ_iλ_e tr(H⁻¹S_iH⁻¹S_e) from ``dp2``/``tr2``,
+    which hold the diagonal terms already; the kept-kept entries are added by the caller.
+
+    With S_e = I on the block: H⁻¹_ke = −M⁻¹Gᵀ gives (S_iγ̂)ᵀH⁻¹_ke γ_e = −(S_iγ̂)ᵀ(M⁻¹Gᵀγ_e)
+    and tr(H⁻¹S_iH⁻¹S_e) = tr(S_i·P), P = M⁻¹GᵀGM⁻¹ = (GM⁻¹)ᵀ(GM⁻¹); with
+    H⁻¹_ee = diag(1/h) + GM⁻¹Gᵀ, γ_eᵀH⁻¹_ee γ_e = Σγ_e²/h + wᵀM⁻¹w (w = Gᵀγ_e) and
+    tr(H⁻¹_ee²) = Σ1/h² + 2Σ spread/h + tr(P·GᵀG).
+    """
+    inv, Mi = sol.eliminated, sol.H_inv
+    h, G = inv.h, inv.G
+    lam_e = lam[-1]
+    g_e = sol.gamma[len(sol.gamma) - len(h):]
+    P = inv.GMi.T @ inv.GMi
+    w = G.T @ g_e
+    Miw = Mi @ w
+    dp2[-1, -1] -= 2.0 * lam_e ** 2 * (float(g_e @ (g_e / h)) + float(w @ Miw))
+    tr2[-1, -1] -= lam_e ** 2 * (float(np.sum(1.0 / h ** 2)) + 2.0 * float(np.sum(inv.spread / h))
+                                 + float(np.sum(P * (G.T @ G))))
+    for i, (sl, m) in enumerate(pens):
+        q = -lam[i] * lam_e * float(sg[i] @ Miw[sl])
+        t = lam[i] * lam_e * float(np.sum(m * P[sl, sl]))
+        dp2[i, -1] -= 2.0 * q
+        dp2[-1, i] -= 2.0 * q
+        tr2[i, -1] -= t
+        tr2[-1, i] -= t
 
 
 def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
@@ -452,4 +591,8 @@ def _relative_scale(problem: WorkingProblem) -> np.ndarray:
         for m in blk.matrices:
             s = np.linalg.norm(m)
             out.append(a / s if s > 0 and a > 0 else 1.0)
+    el = problem.eliminated
+    if el is not None:  # A_ee = diag(d), S_e = I
+        a = np.linalg.norm(el.d)
+        out.append(a / np.sqrt(el.size) if a > 0 else 1.0)
     return np.array(out, dtype=np.float64)

@@ -87,20 +87,49 @@ class PassState:
     def pd(self) -> int:
         return self.dense.shape[0]
 
-    def gram(self, level_offsets: list[int], level_sizes: list[int]) -> np.ndarray:
-        """The full (p × p) XᵀWX assembled from the blocks (for moderate p)."""
-        pd, L = self.pd, len(self.diag)
+    def gram(self, level_offsets: list[int], level_sizes: list[int],
+             skip: int | None = None) -> np.ndarray:
+        """The full (p × p) XᵀWX assembled from the blocks (for moderate p).
+
+        With ``skip`` (the index of a level term) that term's rows and columns are left
+        out: the result is (p − L_skip) square, in raw order without them.
+        """
+        pd = self.pd
+        keep = [t for t in range(len(level_sizes)) if t != skip]
+        offsets = _kept_offsets(level_sizes, skip)
+        rows = _level_rows(level_offsets, level_sizes, keep)
+        L = len(rows)
         out = np.zeros((pd + L, pd + L))
         out[:pd, :pd] = self.dense
-        out[pd:, :pd] = self.cross
-        out[:pd, pd:] = self.cross.T
-        out[pd + np.arange(L), pd + np.arange(L)] = self.diag
+        out[pd:, :pd] = self.cross[rows] if skip is not None else self.cross
+        out[:pd, pd:] = out[pd:, :pd].T
+        out[pd + np.arange(L), pd + np.arange(L)] = self.diag[rows]
         for (a, b), block in self.pairs.items():
-            ra = slice(pd + level_offsets[a], pd + level_offsets[a] + level_sizes[a])
-            rb = slice(pd + level_offsets[b], pd + level_offsets[b] + level_sizes[b])
+            if skip in (a, b):
+                continue
+            ra = slice(pd + offsets[a], pd + offsets[a] + level_sizes[a])
+            rb = slice(pd + offsets[b], pd + offsets[b] + level_sizes[b])
             out[ra, rb] = block
             out[rb, ra] = block.T
         return out
+
+    def level_block(self, term: int, level_offsets: list[int], level_sizes: list[int]
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """One level term's part of the normal equations, for eliminating it: its diagonal
+        d (L,), its cross products with every other raw column C (L × (p − L), in the
+        column order of ``gram(..., skip=term)``) and its right-hand side (L,)."""
+        pd = self.pd
+        rows = np.arange(level_offsets[term], level_offsets[term] + level_sizes[term])
+        offsets = _kept_offsets(level_sizes, term)
+        kept_levels = sum(level_sizes) - level_sizes[term]
+        C = np.zeros((len(rows), pd + kept_levels))
+        C[:, :pd] = self.cross[rows]
+        for (a, b), block in self.pairs.items():
+            if a == term:
+                C[:, pd + offsets[b]:pd + offsets[b] + level_sizes[b]] = block
+            elif b == term:
+                C[:, pd + offsets[a]:pd + offsets[a] + level_sizes[a]] = block.T
+        return self.diag[rows].copy(), C, self.rhs[pd + rows].copy()
 
     def to_dict(self) -> dict:
         """Plain arrays and numbers (for shipping between processes)."""
@@ -152,6 +181,22 @@ class Accumulator:
             rhs=np.concatenate([_ordered_sum(self.rhs_d), _ordered_sum(self.rhs_l)]),
             colsum=np.concatenate([_ordered_sum(self.col_d), _ordered_sum(self.col_l)]),
             scalars=dict(self.scalars))
+
+
+def _kept_offsets(level_sizes: list[int], skip: int | None) -> dict[int, int]:
+    """First column (within the level group) of every level term once ``skip`` is left out."""
+    out, off = {}, 0
+    for t, size in enumerate(level_sizes):
+        if t != skip:
+            out[t] = off
+            off += size
+    return out
+
+
+def _level_rows(level_offsets: list[int], level_sizes: list[int], keep: list[int]
+                ) -> np.ndarray:
+    parts = [np.arange(level_offsets[t], level_offsets[t] + level_sizes[t]) for t in keep]
+    return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
 
 def _ordered_sum(per_thread: np.ndarray) -> np.ndarray:
