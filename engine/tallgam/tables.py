@@ -131,13 +131,21 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
     refs = refs if refs is not None else references(fit)
     b, sl = fit.term(label)
     beta = fit.coefficients_raw[sl]
-    cov = fit.covariance_raw[sl, sl]
-    X = term_matrix(b, grid)
-    n = X.shape[0]
-    est = X @ beta
-    if isinstance(b, LevelBasis) and not isinstance(b, CategoricalBasis):
-        R = np.zeros_like(X)  # random effects and territories: measured from zero
+    if isinstance(b, LevelBasis):
+        # one coefficient per row, measured from the base level (coefficient 0, variance 0)
+        # or from zero: the variance is the level's own; no L × L matrix is formed
+        cols = {k: pa.array(v, type=pa.string()) if isinstance(v, list) else v
+                for k, v in grid.items()}
+        code = b.codes(cols)
+        if np.any(code < 0):
+            raise SpecError(f"{label}: levels not seen in training cannot be tabulated")
+        est = beta[code]
+        diff = est
+        se = np.sqrt(np.maximum(fit.covariance.diagonal()[sl][code], 0.0))
     else:
+        X = term_matrix(b, grid)
+        n = X.shape[0]
+        est = X @ beta
         ref = dict(refs[b.label])
         if isinstance(b, SplineBasis) and b.levels:  # per-level curves: from the base curve
             ref[b.spec.per] = _base_level(fit, b.spec.per)
@@ -146,9 +154,9 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
             R = np.zeros_like(X)
         else:
             R = np.repeat(term_matrix(b, point), n, axis=0)
-    D = X - R
-    diff = D @ beta
-    se = np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", D, cov, D), 0.0))
+        D = X - R
+        diff = D @ beta
+        se = np.sqrt(np.maximum(fit.covariance.term_variances(sl, D), 0.0))
     z = stats.norm.ppf(0.5 + level / 2.0)
     out = {"estimate": est, "difference": diff, "std_error": se, "lower": diff - z * se,
            "upper": diff + z * se}
