@@ -90,6 +90,9 @@ class Constraints:
             # its penalties() would be an L × L identity: read the fixed λ from the spec
             self.fixed.append(getattr(design.bases[self.eliminated].spec, "smoothing", None))
             self.penalty_owner.append(self.eliminated)
+        from .shape import ShapeConstraints
+
+        self.shapes = ShapeConstraints(self)
 
     @property
     def eliminated_raw(self) -> slice | None:

@@ -422,6 +422,8 @@ class _Run:
             if last is None:
                 constraints.check_identifiable(problem)
             sol = select(problem, model.criterion, constraints.fixed, start=rho)
+            if constraints.shapes:
+                sol = constraints.shapes.apply(sol, problem)
             notes.extend(n for n in sol.notes if n not in notes)
             last = sol
             rho = _rho_of(sol.lam, problem, constraints)
@@ -523,6 +525,8 @@ def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
     problem = constraints.problem(state, beta, None)
     sol = solve(problem, lam)
     sol.gamma = constraints.to_free(beta)
+    if constraints.shapes:  # inference conditional on the active shape constraints
+        sol = constraints.shapes.apply(sol, problem, keep_gamma=True)
     sol.criterion, sol.criterion_name = last.criterion, last.criterion_name
     sol.iterations, sol.converged = last.iterations, last.converged
     return sol

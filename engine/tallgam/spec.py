@@ -50,7 +50,7 @@ TERM_TYPES: dict[str, tuple] = {
     "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
     "knots": (str, list), "penalty": (str,), "smoothing": (int, float, list),
     "base": (str, int), "per": (str,), "multiplier": (str,), "select": (bool,),
-    "period": _NUMBER, "origin": _NUMBER, "neighbours": (str, dict),
+    "period": _NUMBER, "origin": _NUMBER, "neighbours": (str, dict), "shape": (str,),
 }
 
 

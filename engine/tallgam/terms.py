@@ -85,6 +85,7 @@ class SplineSpec(TermSpec):
     per: str | None = None
     multiplier: str | None = None
     select: bool = False
+    shape: str | None = None
 
     kind = "spline"
 
@@ -103,6 +104,15 @@ class SplineSpec(TermSpec):
         _check_smoothing(where, self.smoothing)
         if self.per is not None and self.per == self.column:
             raise SpecError(f"{where}: per= must name another column")
+        if self.shape is not None:
+            from .shape import SHAPES
+
+            if self.shape not in SHAPES:
+                raise SpecError(f"{where}: shape must be one of {', '.join(SHAPES)}, "
+                                f"got {self.shape!r}")
+            if self.per or self.multiplier:
+                raise SpecError(f"{where}: shape= works on a plain spline (no per= or "
+                                "multiplier=)")
 
     @property
     def label(self) -> str:
@@ -335,7 +345,8 @@ class AdjacencySpec(TermSpec):
 
 def spline(column: str, size: int = 10, *, knots: str | Sequence[float] | None = None,
            penalty: str = "curvature", smoothing: float | None = None, per: str | None = None,
-           multiplier: str | None = None, select: bool = False) -> SplineSpec:
+           multiplier: str | None = None, select: bool = False,
+           shape: str | None = None) -> SplineSpec:
     """A smooth function of a numeric column: a penalized cubic B-spline.
 
     Parameters
@@ -353,9 +364,11 @@ def spline(column: str, size: int = 10, *, knots: str | Sequence[float] | None =
         centred.
     select : add a penalty on the curve's straight-line part, so the criterion can remove
         the term altogether (Marra & Wood 2011); its EDF then goes to zero.
+    shape : ``"increasing"``, ``"decreasing"``, ``"convex"`` or ``"concave"``: the fitted
+        curve keeps that shape everywhere (see :mod:`tallgam.shape`).
     """
     return SplineSpec(column, size=size, knots=knots, penalty=penalty, smoothing=smoothing,
-                      per=per, multiplier=multiplier, select=select)
+                      per=per, multiplier=multiplier, select=select, shape=shape)
 
 
 def cyclic(column: str, *, period: float, size: int = 10, origin: float | None = None,
