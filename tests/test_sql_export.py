@@ -31,7 +31,7 @@ def test_sql_of_every_term_kind_matches_predict():
         tg.cyclic("month", period=12, size=6), tg.surface("lon", "lat", size=(5, 5)),
         tg.categorical("fuel"), tg.spline("age", per="fuel", size=6),
         tg.spline("age", multiplier="z", size=5, shape=None), tg.random_effect("grp"),
-        tg.adjacency("reg", neighbours=chain), tg.linear("z")])
+        tg.adjacency("reg", neighbours=chain)])
     fit = model.fit(df)
     new = df.copy()
     new.loc[:50, "month"] = 25.0        # wraps to month 1
