@@ -180,7 +180,9 @@ class Constraints:
         d[d == 0] = 1.0
         vals, vecs = np.linalg.eigh(M / d[:, None] / d[None, :])
         null = vecs[:, vals < 1e-11 * max(vals.max(), 1e-300)]
-        involved = set(int(np.argmax(np.abs(v))) for v in null.T) | set(bad_cols.tolist())
+        involved = set(bad_cols.tolist())
+        for v in null.T:  # every coefficient that carries a real share of the combination
+            involved |= set(np.flatnonzero(np.abs(v) > 0.1 * np.abs(v).max()).tolist())
         if not involved:
             return
         names = sorted({self.design.bases[self._basis_of(i)].label for i in involved})
