@@ -20,177 +20,18 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
-from . import kernels
 from .dense import Constraints
-from .design import Design, batch_columns
-from .errors import ColumnNotFound, ConvergenceWarning, DataError, FitError, TallgamWarning
+from .design import Design
+from .errors import ConvergenceWarning, DataError, FitError, TallgamWarning
+from .inputs import WC, check_profile, complete_rows_condition, model_inputs, resolved_expressions
 from .model import Model
-from .profile import DataProfile, Field, Rule, add_weighted_histograms, run_profile
+from .passes import LOGLIK_STEP, LocalPasses, PassPlan
+from .profile import DataProfile, add_weighted_histograms, run_profile
 from .progress import Event, make_callback
 from .smoothing import RHO_BOUND, Solution, select, solve
-from .sources import Source, open_source, quote
-from .state import Accumulator, PassState
+from .sources import Source, open_source
+from .state import PassState
 from .terms import Basis, InterceptBasis
-
-Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
-
-_NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT",
-                  "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL",
-                  "REAL", "BOOLEAN")
-
-
-# ---------------------------------------------------------------------------------------
-# inputs: the SQL the model reads
-
-
-@dataclass
-class Inputs:
-    """The SQL select list of a model over a source, and how to read its batches."""
-
-    select: list[str]
-    where: str | None
-    level_names: set[str]
-    has_weights: bool
-    has_offset: bool
-    has_cweights: bool
-    profile_fields: list[Field] = field(default_factory=list)
-    rules: list[Rule] = field(default_factory=list)
-    exprs: dict[str, str] = field(default_factory=dict)
-
-    def select_expr(self, alias: str) -> str:
-        """The SQL expression behind a select-list alias (e.g. the constraint weights)."""
-        for item in self.select:
-            if item.endswith(f" AS {alias}"):
-                return item[: -len(f" AS {alias}")]
-        raise KeyError(alias)
-
-
-def column_or_expression(source: Source, text: str, role: str) -> str:
-    """A quoted column if ``text`` names one, else ``text`` as a checked SQL expression."""
-    if text in source.schema:
-        return quote(text)
-    try:
-        source.query(f"SELECT {text} FROM tallgam_source LIMIT 0").fetchall()
-    except DataError as exc:
-        from .errors import nearest
-
-        raise ColumnNotFound(
-            f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"
-            f" nor a SQL expression DuckDB accepts ({exc})") from None
-    return f"({text})"
-
-
-def model_inputs(model: Model, source: Source, design_specs, for_prediction: bool = False,
-                 with_offset: bool = True) -> Inputs:
-    """Resolve the model's columns and expressions against ``source``."""
-    columns: dict[str, str] = {}  # column -> "numeric" | "levels"
-    for spec in design_specs:
-        columns.update(spec.input_kinds())
-    source.require_columns(list(columns))
-    for c, kind in columns.items():
-        typ = source.schema[c].upper()
-        if kind == "numeric" and not typ.startswith(_NUMERIC_TYPES):
-            raise DataError(f"column {c!r} has type {source.schema[c]}, but the model uses it "
-                            "as a number; cast it in SQL or use tg.categorical")
-    exprs: dict[str, str] = {}
-    if not for_prediction:
-        exprs[Y] = column_or_expression(source, model.response, "response")
-        if model.weights is not None:
-            exprs[W] = column_or_expression(source, model.weights, "weights")
-    if with_offset:
-        if model.exposure is not None:
-            exprs["__exposure"] = column_or_expression(source, model.exposure, "exposure")
-        if model.offset is not None:
-            exprs["__offset"] = column_or_expression(source, model.offset, "offset")
-    select = []
-    fields_: list[Field] = []
-    rules: list[Rule] = []
-    if Y in exprs:
-        select.append(f"CAST({exprs[Y]} AS DOUBLE) AS {Y}")
-        fields_.append(Field("response", exprs[Y]))
-        for cond, msg in model.family.response_rules:
-            rules.append(Rule(f"response: {msg}", "response", cond.format(y="{response}"),
-                              f"response {model.response!r} has {msg}"))
-    if W in exprs:
-        select.append(f"CAST({exprs[W]} AS DOUBLE) AS {W}")
-        fields_.append(Field("weights", exprs[W]))
-        rules.append(Rule("weights: not positive", "weights", "{weights} <= 0",
-                          f"weights {model.weights!r} has values ≤ 0"))
-    parts = []
-    if "__exposure" in exprs:
-        parts.append(f"ln(CAST({exprs['__exposure']} AS DOUBLE))")
-        fields_.append(Field("exposure", exprs["__exposure"]))
-        rules.append(Rule("exposure: not positive", "exposure", "{exposure} <= 0",
-                          f"exposure {model.exposure!r} has values ≤ 0"))
-    if "__offset" in exprs:
-        parts.append(f"CAST({exprs['__offset']} AS DOUBLE)")
-        fields_.append(Field("offset", exprs["__offset"]))
-    if parts:
-        select.append(f"{' + '.join(parts)} AS {O}")
-    cw = None
-    if "__exposure" in exprs:
-        cw = f"CAST({exprs['__exposure']} AS DOUBLE)"
-    elif W in exprs:
-        cw = f"CAST({exprs[W]} AS DOUBLE)"
-    if cw is not None and not for_prediction:
-        select.append(f"{cw} AS {WC}")
-    seen: dict[str, Field] = {}
-    for spec in design_specs:
-        for f in spec.profile_fields():
-            if f.key not in seen:
-                seen[f.key] = Field(f.key, f.expr, f.kind, f.histogram)
-                fields_.append(seen[f.key])
-            else:  # a column several terms use: profile it once, with a histogram if any asks
-                seen[f.key].histogram |= f.histogram
-    for c, kind in columns.items():
-        cast = "VARCHAR" if kind == "levels" else "DOUBLE"
-        select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
-    return Inputs(select=select, where=model.where, level_names={
-        c for c, k in columns.items() if k == "levels"}, has_weights=W in exprs,
-        has_offset=bool(parts), has_cweights=cw is not None and not for_prediction,
-        profile_fields=fields_, rules=rules, exprs=exprs)
-
-
-def resolved_expressions(inputs: Inputs) -> dict[str, str]:
-    """The SQL the fit used for response, weights, exposure and offset (for export)."""
-    names = {Y: "response", W: "weights", "__exposure": "exposure", "__offset": "offset"}
-    return {names[k]: v for k, v in inputs.exprs.items() if k in names}
-
-
-def complete_rows_condition(fields_: list[Field]) -> str:
-    conds = []
-    for f in fields_:
-        if f.kind == "numeric":
-            conds.append(f"isfinite(CAST({f.expr} AS DOUBLE))")
-        else:
-            conds.append(f"({f.expr}) IS NOT NULL")
-    return " AND ".join(conds) if conds else "TRUE"
-
-
-def check_profile(profile: DataProfile, source: Source, model: Model) -> None:
-    """DataError for empty data, NULL/NaN/inf values and rule violations (with counts)."""
-    where = f" after the filter {model.where!r}" if model.where else ""
-    if profile.rows == 0:
-        raise DataError(f"{source.label} has no rows{where}")
-    bad = []
-    for key, fp in profile.fields.items():
-        n_bad = fp.nulls + fp.nonfinite
-        if n_bad:
-            name = key.split(":", 1)[-1]
-            what = f"{fp.nulls} NULL" + (f", {fp.nonfinite} NaN/inf" if fp.nonfinite else "")
-            bad.append(f"{name!r}: {what}")
-    if bad:
-        raise DataError(
-            f"missing or non-finite values in {len(bad)} column(s) of {profile.rows} rows — "
-            + "; ".join(bad) + ". Clean them, filter them with where=, or pass missing='drop'.")
-    if profile.violations:
-        lines = [f"{msg}: {n} row(s), e.g. {', '.join(f'{v:g}' for v in ex)}"
-                 for n, ex, msg in profile.violations.values()]
-        raise DataError("values outside what the model allows — " + "; ".join(lines))
-
-
-# ---------------------------------------------------------------------------------------
-# the driver
 
 
 @dataclass
@@ -298,7 +139,7 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
     return fs
 
 
-def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
+def _fit(model: Model, source: Source, batch_rows: int, callback, runner=None) -> FitState:
     fam = model.family
     inputs = model_inputs(model, source, model.terms)
     callback(Event("start", "profile"))
@@ -323,16 +164,18 @@ def _fit(model: Model, source: Source, batch_rows: int, callback) -> FitState:
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
-    run = _Run(model, fam, source, inputs, design, profile, batch_rows, callback)
+    run = _Run(model, fam, runner or LocalPasses(source, callback), inputs, design, profile,
+               batch_rows, callback)
     return run.iterate(dropped)
 
 
 class _Run:
-    """The PIRLS iterations of one fit (state between data passes)."""
+    """The PIRLS iterations of one fit (state between data passes). ``runner`` carries
+    out the passes: :class:`~tallgam.passes.LocalPasses` here, or a cluster runner."""
 
-    def __init__(self, model, fam, source, inputs, design, profile, batch_rows, callback):
+    def __init__(self, model, fam, runner, inputs, design, profile, batch_rows, callback):
         self.model, self.fam, self.link = model, fam, model.link
-        self.source, self.inputs, self.design = source, inputs, design
+        self.runner, self.inputs, self.design = runner, inputs, design
         self.profile, self.batch_rows, self.callback = profile, batch_rows, callback
         self.y_mean = profile["response"].mean
         self.start_shift = _start_shift(model, profile)
@@ -341,11 +184,29 @@ class _Run:
         self.passes = 0
         self.extra_records: list[PassRecord] = []
 
+    def plan(self, beta, beta_prev=None) -> PassPlan:
+        return PassPlan(inputs=self.inputs, design=self.design, family=self.fam,
+                        link=self.link, beta=beta, beta_prev=beta_prev,
+                        start_shift=self.start_shift, null_beta0=self.null_beta0,
+                        y_mean=self.y_mean, scale_est=self.scale_est,
+                        batch_rows=self.batch_rows)
+
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
-        state = _data_pass(self, beta, beta_prev)
+        state = self.runner.working(self.plan(beta, beta_prev), f"pass {self.passes}",
+                                    self.profile.rows)
         self.null_beta0 += _null_step(state)
         return state
+
+    def loglik_pass(self, beta, scale: float) -> float:
+        self.passes += 1
+        t0 = time.perf_counter()
+        total = self.runner.loglik(self.plan(beta), scale, f"pass {self.passes}",
+                                   self.profile.rows)
+        self.extra_records.append(PassRecord(self.passes, "loglik", float("nan"),
+                                             float("nan"), [], time.perf_counter() - t0,
+                                             self.profile.rows))
+        return total
 
     def iterate(self, dropped: int) -> FitState:
         """Data passes until the penalized deviance and the linear predictor settle.
@@ -492,7 +353,7 @@ class _Run:
         elif fam.loglik_in_pass:
             loglik = _interpolate_loglik(sc, self.scale_est, scale)
         else:
-            loglik = _loglik_pass(self, beta, scale)
+            loglik = self.loglik_pass(beta, scale)
         sc["deviance"] = deviance
         if exact:  # the pass ran at the starting values; the fit's residuals are the deviance
             sc["response_ss"] = sc["pearson"] = deviance
@@ -506,7 +367,6 @@ class _Run:
 
 
 ETA_TOLERANCE = 1e-6  # largest change of the linear predictor between the last two iterates
-LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
 
 
 def _interpolate_loglik(sc: dict, scale_pass: float, scale: float) -> float:
@@ -579,134 +439,3 @@ def _start_shift(model: Model, profile: DataProfile) -> float:
     return float(eta) if np.isfinite(eta) else 0.0
 
 
-def _data_pass(run: _Run, beta, beta_prev) -> PassState:
-    """One pass over the data: the working model at ``beta`` (or at the starting values
-    when ``beta`` is None) accumulated into a :class:`PassState`."""
-    fam, link, design, inputs = run.fam, run.link, run.design, run.inputs
-    acc = Accumulator(design.pd, [b.n_raw for b in design.levels], numba.get_num_threads())
-    task = f"pass {run.passes}"
-    total = run.profile.rows
-    run.callback(Event("start", task, total=total))
-    done = 0
-    if beta is not None:
-        beta_d = np.ascontiguousarray(beta[:design.pd])
-        beta_l = np.ascontiguousarray(beta[design.pd:])
-    if beta_prev is not None:
-        step_d = np.ascontiguousarray(beta[:design.pd] - beta_prev[:design.pd])
-        step_l = np.ascontiguousarray(beta[design.pd:] - beta_prev[design.pd:])
-    three_scales = not fam.scale_known and fam.loglik_in_pass and fam.name != "gaussian"
-    scales = run.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
-    for batch in run.source.batches(inputs.select, inputs.where, run.batch_rows):
-        cols = batch_columns(batch, inputs.level_names)
-        y_all = cols[Y]
-        w_all = cols[W] if inputs.has_weights else None
-        o_all = cols[O] if inputs.has_offset else None
-        wc_all = cols[WC] if inputs.has_cweights else None
-        for sl, enc in design.blocks(cols):
-            y = y_all[sl]
-            m = len(y)
-            w = w_all[sl] if w_all is not None else np.ones(m)
-            o = o_all[sl] if o_all is not None else np.zeros(m)
-            wc = wc_all[sl] if wc_all is not None else w
-            extra = {}
-            if beta is None:
-                mu = _start_mu(fam, link, y, w, run.y_mean)
-                eta = link.link(mu)
-                fitted = eta - o  # r is measured from the intercept-only anchor
-                base = run.start_shift
-            else:
-                fitted = np.zeros(m)
-                kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, fitted)
-                eta = fitted + o
-                with np.errstate(all="ignore"):
-                    mu = link.inverse(eta)
-                    extra["invalid_rows"] = np.count_nonzero(~fam.valid_mu(mu))
-                mu = fam.clip_mu(mu)
-                base = None
-                if beta_prev is not None:
-                    change = np.zeros(m)
-                    kernels.linear_predictor(enc.idx, enc.val, enc.lev, step_d, step_l, change)
-                    extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
-                if fam.estimates_nuisance:
-                    extra["nuisance_score"], extra["nuisance_info"] = fam.nuisance_sums(y, mu, w)
-            dmu = link.mu_eta(eta)
-            var = fam.variance(mu)
-            wz = w * dmu * dmu / var
-            r = (y - mu) / dmu
-            if base is not None:
-                r = r + (fitted - base)
-            if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
-                raise FitError(
-                    f"the {link.name} link took the mean of the {fam.name} family outside its "
-                    f"range in {int(np.sum(~np.isfinite(wz * r)))} row(s) of pass {run.passes} "
-                    "(e.g. a log link with non-positive means, an inverse link through zero); "
-                    "use the family's default link or check the response")
-            acc.add(enc, wz, r, wc)
-            # the intercept-and-offset (null) model, one IRLS step per pass
-            eta0 = o + run.null_beta0
-            mu0 = fam.clip_mu(link.inverse(eta0))
-            dmu0 = link.mu_eta(eta0)
-            w0 = w * dmu0 * dmu0 / fam.variance(mu0)
-            if not three_scales:
-                ll = {"loglik": fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0}
-            else:
-                ll = dict(zip(("loglik_lo", "loglik", "loglik_hi"),
-                              (fam.loglik(y, mu, w, sc) for sc in scales)))
-            acc.add_scalars(
-                rows=m, weight=np.sum(w), resid_ss=np.sum(wz * r * r),
-                deviance=np.sum(w * fam.unit_deviance(y, mu)),
-                pearson=np.sum(w * (y - mu) ** 2 / var),
-                response_ss=np.sum(w * (y - mu) ** 2),
-                centred_ss=np.sum(w * (y - run.y_mean) ** 2),
-                centred_sum=np.sum(w * (y - run.y_mean)), log_weight=np.sum(np.log(w)),
-                null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
-                null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0), **ll, **extra)
-        done += batch.num_rows
-        run.callback(Event("advance", task, rows=done, total=total))
-    run.callback(Event("end", task, rows=done, total=total))
-    return acc.finish()
-
-
-def _loglik_pass(run: _Run, beta, scale: float) -> float:
-    """One light pass for the log-likelihood at the final coefficients and scale (for
-    families whose density is too costly to evaluate in every pass)."""
-    fam, link, design, inputs = run.fam, run.link, run.design, run.inputs
-    beta_d = np.ascontiguousarray(beta[:design.pd])
-    beta_l = np.ascontiguousarray(beta[design.pd:])
-    run.passes += 1
-    task = f"pass {run.passes}"
-    run.callback(Event("start", task, total=run.profile.rows, message="log-likelihood"))
-    t0 = time.perf_counter()
-    total = 0.0
-    done = 0
-    for batch in run.source.batches(inputs.select, inputs.where, run.batch_rows):
-        cols = batch_columns(batch, inputs.level_names)
-        for sl, enc in design.blocks(cols):
-            m = sl.stop - sl.start
-            eta = cols[O][sl].copy() if inputs.has_offset else np.zeros(m)
-            kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, eta)
-            w = cols[W][sl] if inputs.has_weights else np.ones(m)
-            total += fam.loglik(cols[Y][sl], fam.clip_mu(link.inverse(eta)), w, scale)
-        done += batch.num_rows
-        run.callback(Event("advance", task, rows=done, total=run.profile.rows))
-    run.callback(Event("end", task, rows=done, total=run.profile.rows))
-    run.extra_records.append(PassRecord(run.passes, "loglik", float("nan"), float("nan"), [],
-                                        time.perf_counter() - t0, done))
-    return total
-
-
-def _start_mu(fam, link, y: np.ndarray, w: np.ndarray, y_mean: float) -> np.ndarray:
-    """Per-row starting means (McCullagh & Nelder 1989, §2.5: μ₀ from y, nudged inside
-    the mean space); rows where the link of that value is not finite start at the mean."""
-    name = fam.name
-    if name == "binomial":
-        mu = (w * y + 0.5) / (w + 1.0)
-    elif name in ("poisson", "negative_binomial", "tweedie"):
-        mu = y + 0.1
-    else:
-        mu = fam.clip_mu(y.copy())
-    with np.errstate(all="ignore"):
-        bad = ~np.isfinite(link.link(mu))
-    if bad.any():
-        mu = np.where(bad, y_mean, mu)
-    return mu

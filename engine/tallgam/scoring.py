@@ -20,7 +20,7 @@ import pyarrow.compute as pc
 from . import kernels
 from .design import Design, batch_columns
 from .errors import DataError, SpecError, TallgamWarning
-from .fitting import O, model_inputs
+from .inputs import O, model_inputs
 from .sources import Source, quote
 
 OUTPUTS = ("response", "link", "terms")

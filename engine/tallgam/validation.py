@@ -31,7 +31,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from .errors import DataError
-from .fitting import W, Y, model_inputs
+from .inputs import W, Y, model_inputs
 from .sources import open_source, quote
 
 BANDS = 10

@@ -1,0 +1,167 @@
+"""What a model reads from a source: the SQL select list, the profile fields and rules,
+and the checks of the profile (empty data, NULLs, values outside the family's support).
+
+Every read of the data (profile, data passes, scoring, validation) goes through the select
+list made here, so a column is cast and quoted the same way everywhere.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from .errors import ColumnNotFound, DataError
+from .model import Model
+from .profile import DataProfile, Field, Rule
+from .sources import Source, quote
+
+Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
+
+_NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT",
+                  "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL",
+                  "REAL", "BOOLEAN")
+
+
+@dataclass
+class Inputs:
+    """The SQL select list of a model over a source, and how to read its batches."""
+
+    select: list[str]
+    where: str | None
+    level_names: set[str]
+    has_weights: bool
+    has_offset: bool
+    has_cweights: bool
+    profile_fields: list[Field] = field(default_factory=list)
+    rules: list[Rule] = field(default_factory=list)
+    exprs: dict[str, str] = field(default_factory=dict)
+
+    def select_expr(self, alias: str) -> str:
+        """The SQL expression behind a select-list alias (e.g. the constraint weights)."""
+        for item in self.select:
+            if item.endswith(f" AS {alias}"):
+                return item[: -len(f" AS {alias}")]
+        raise KeyError(alias)
+
+
+def column_or_expression(source: Source, text: str, role: str) -> str:
+    """A quoted column if ``text`` names one, else ``text`` as a checked SQL expression."""
+    if text in source.schema:
+        return quote(text)
+    try:
+        source.query(f"SELECT {text} FROM tallgam_source LIMIT 0").fetchall()
+    except DataError as exc:
+        from .errors import nearest
+
+        raise ColumnNotFound(
+            f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"
+            f" nor a SQL expression DuckDB accepts ({exc})") from None
+    return f"({text})"
+
+
+def model_inputs(model: Model, source: Source, design_specs, for_prediction: bool = False,
+                 with_offset: bool = True) -> Inputs:
+    """Resolve the model's columns and expressions against ``source``."""
+    columns: dict[str, str] = {}  # column -> "numeric" | "levels"
+    for spec in design_specs:
+        columns.update(spec.input_kinds())
+    source.require_columns(list(columns))
+    for c, kind in columns.items():
+        typ = source.schema[c].upper()
+        if kind == "numeric" and not typ.startswith(_NUMERIC_TYPES):
+            raise DataError(f"column {c!r} has type {source.schema[c]}, but the model uses it "
+                            "as a number; cast it in SQL or use tg.categorical")
+    exprs: dict[str, str] = {}
+    if not for_prediction:
+        exprs[Y] = column_or_expression(source, model.response, "response")
+        if model.weights is not None:
+            exprs[W] = column_or_expression(source, model.weights, "weights")
+    if with_offset:
+        if model.exposure is not None:
+            exprs["__exposure"] = column_or_expression(source, model.exposure, "exposure")
+        if model.offset is not None:
+            exprs["__offset"] = column_or_expression(source, model.offset, "offset")
+    select = []
+    fields_: list[Field] = []
+    rules: list[Rule] = []
+    if Y in exprs:
+        select.append(f"CAST({exprs[Y]} AS DOUBLE) AS {Y}")
+        fields_.append(Field("response", exprs[Y]))
+        for cond, msg in model.family.response_rules:
+            rules.append(Rule(f"response: {msg}", "response", cond.format(y="{response}"),
+                              f"response {model.response!r} has {msg}"))
+    if W in exprs:
+        select.append(f"CAST({exprs[W]} AS DOUBLE) AS {W}")
+        fields_.append(Field("weights", exprs[W]))
+        rules.append(Rule("weights: not positive", "weights", "{weights} <= 0",
+                          f"weights {model.weights!r} has values ≤ 0"))
+    parts = []
+    if "__exposure" in exprs:
+        parts.append(f"ln(CAST({exprs['__exposure']} AS DOUBLE))")
+        fields_.append(Field("exposure", exprs["__exposure"]))
+        rules.append(Rule("exposure: not positive", "exposure", "{exposure} <= 0",
+                          f"exposure {model.exposure!r} has values ≤ 0"))
+    if "__offset" in exprs:
+        parts.append(f"CAST({exprs['__offset']} AS DOUBLE)")
+        fields_.append(Field("offset", exprs["__offset"]))
+    if parts:
+        select.append(f"{' + '.join(parts)} AS {O}")
+    cw = None
+    if "__exposure" in exprs:
+        cw = f"CAST({exprs['__exposure']} AS DOUBLE)"
+    elif W in exprs:
+        cw = f"CAST({exprs[W]} AS DOUBLE)"
+    if cw is not None and not for_prediction:
+        select.append(f"{cw} AS {WC}")
+    seen: dict[str, Field] = {}
+    for spec in design_specs:
+        for f in spec.profile_fields():
+            if f.key not in seen:
+                seen[f.key] = Field(f.key, f.expr, f.kind, f.histogram)
+                fields_.append(seen[f.key])
+            else:  # a column several terms use: profile it once, with a histogram if any asks
+                seen[f.key].histogram |= f.histogram
+    for c, kind in columns.items():
+        cast = "VARCHAR" if kind == "levels" else "DOUBLE"
+        select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
+    return Inputs(select=select, where=model.where, level_names={
+        c for c, k in columns.items() if k == "levels"}, has_weights=W in exprs,
+        has_offset=bool(parts), has_cweights=cw is not None and not for_prediction,
+        profile_fields=fields_, rules=rules, exprs=exprs)
+
+
+def resolved_expressions(inputs: Inputs) -> dict[str, str]:
+    """The SQL the fit used for response, weights, exposure and offset (for export)."""
+    names = {Y: "response", W: "weights", "__exposure": "exposure", "__offset": "offset"}
+    return {names[k]: v for k, v in inputs.exprs.items() if k in names}
+
+
+def complete_rows_condition(fields_: list[Field]) -> str:
+    conds = []
+    for f in fields_:
+        if f.kind == "numeric":
+            conds.append(f"isfinite(CAST({f.expr} AS DOUBLE))")
+        else:
+            conds.append(f"({f.expr}) IS NOT NULL")
+    return " AND ".join(conds) if conds else "TRUE"
+
+
+def check_profile(profile: DataProfile, source: Source, model: Model) -> None:
+    """DataError for empty data, NULL/NaN/inf values and rule violations (with counts)."""
+    where = f" after the filter {model.where!r}" if model.where else ""
+    if profile.rows == 0:
+        raise DataError(f"{source.label} has no rows{where}")
+    bad = []
+    for key, fp in profile.fields.items():
+        n_bad = fp.nulls + fp.nonfinite
+        if n_bad:
+            name = key.split(":", 1)[-1]
+            what = f"{fp.nulls} NULL" + (f", {fp.nonfinite} NaN/inf" if fp.nonfinite else "")
+            bad.append(f"{name!r}: {what}")
+    if bad:
+        raise DataError(
+            f"missing or non-finite values in {len(bad)} column(s) of {profile.rows} rows — "
+            + "; ".join(bad) + ". Clean them, filter them with where=, or pass missing='drop'.")
+    if profile.violations:
+        lines = [f"{msg}: {n} row(s), e.g. {', '.join(f'{v:g}' for v in ex)}"
+                 for n, ex, msg in profile.violations.values()]
+        raise DataError("values outside what the model allows — " + "; ".join(lines))
