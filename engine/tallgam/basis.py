@@ -195,3 +195,91 @@ def evaluate_periodic(knots: np.ndarray, period: float, x: np.ndarray
     origin = knots[3]
     xw = origin + np.mod(np.asarray(x, dtype=np.float64) - origin, period)
     return evaluate(knots, xw)
+
+
+_NONE_I = np.empty(0, dtype=np.int32)
+_NONE_F = np.empty(0, dtype=np.float64)
+
+
+@numba.njit(cache=True, parallel=True)
+def _encode_rows(t, size, x, col0, codes, stride, mult, period, wrap, idx, val):
+    n = x.shape[0]
+    lo = t[DEGREE]
+    hi = t[size]
+    for i in numba.prange(n):
+        xi = x[i]
+        if period > 0.0:
+            xi = lo + (xi - lo) % period
+        xi = min(max(xi, lo), hi)
+        s = _span(t, size, xi)
+        row = val[i]
+        _basis_row(t, s, xi, row)
+        off = col0
+        scale = 1.0
+        if codes.shape[0] > 0:
+            c = codes[i]
+            if c < 0:
+                scale = 0.0
+                c = 0
+            off += c * stride
+        if mult.shape[0] > 0:
+            scale *= mult[i]
+        for a in range(ORDER):
+            col = s - DEGREE + a
+            if wrap > 0:
+                col = col % wrap
+            idx[i, a] = off + col
+            if scale != 1.0:
+                row[a] *= scale
+
+
+def encode_rows(knots: np.ndarray, x: np.ndarray, col0: int, idx: np.ndarray,
+                val: np.ndarray, *, codes: np.ndarray | None = None, stride: int = 0,
+                multiplier: np.ndarray | None = None, period: float = 0.0,
+                wrap: int = 0) -> None:
+    """Write a cubic B-spline's sparse rows straight into the design block: ``idx``
+    (n × 4, int32) and ``val`` (n × 4), which may be column slices of wider arrays.
+
+    ``codes``/``stride``: one curve per level (level c uses columns c·stride onwards; a
+    negative code gives zero values). ``multiplier``: values times z. ``period``/``wrap``:
+    a periodic basis (x wrapped into one period, columns taken modulo ``wrap``).
+    """
+    knots = np.ascontiguousarray(knots, dtype=np.float64)
+    size = knots.shape[0] - ORDER
+    _encode_rows(knots, size, np.ascontiguousarray(x, dtype=np.float64), int(col0),
+                 _NONE_I if codes is None else np.ascontiguousarray(codes, dtype=np.int32),
+                 int(stride), _NONE_F if multiplier is None
+                 else np.ascontiguousarray(multiplier, dtype=np.float64),
+                 float(period), int(wrap), idx, val)
+
+
+@numba.njit(cache=True, parallel=True)
+def _encode_tensor2(t1, size1, x1, t2, size2, x2, col0, stride1, idx, val):
+    n = x1.shape[0]
+    lo1, hi1 = t1[DEGREE], t1[size1]
+    lo2, hi2 = t2[DEGREE], t2[size2]
+    for i in numba.prange(n):
+        b1 = np.empty(ORDER)
+        b2 = np.empty(ORDER)
+        u = min(max(x1[i], lo1), hi1)
+        v = min(max(x2[i], lo2), hi2)
+        s1 = _span(t1, size1, u)
+        s2 = _span(t2, size2, v)
+        _basis_row(t1, s1, u, b1)
+        _basis_row(t2, s2, v, b2)
+        k = 0
+        for a in range(ORDER):
+            for b in range(ORDER):
+                idx[i, k] = col0 + (s1 - DEGREE + a) * stride1 + (s2 - DEGREE + b)
+                val[i, k] = b1[a] * b2[b]
+                k += 1
+
+
+def encode_tensor2(knots1: np.ndarray, x1: np.ndarray, knots2: np.ndarray, x2: np.ndarray,
+                   col0: int, idx: np.ndarray, val: np.ndarray) -> None:
+    """The 16 non-zeros of a two-margin tensor-product row (column (i₁·k₂ + i₂))."""
+    k1 = np.ascontiguousarray(knots1, dtype=np.float64)
+    k2 = np.ascontiguousarray(knots2, dtype=np.float64)
+    _encode_tensor2(k1, k1.shape[0] - ORDER, np.ascontiguousarray(x1, dtype=np.float64),
+                    k2, k2.shape[0] - ORDER, np.ascontiguousarray(x2, dtype=np.float64),
+                    int(col0), k2.shape[0] - ORDER, idx, val)

@@ -696,16 +696,9 @@ class SplineBasis(Basis):
 
     def encode(self, cols, idx, val, col0):
         spec = self.spec
-        first, values = bs.evaluate(self.knots, cols[spec.column])
-        start = first + col0
-        if self.levels:
-            code = self.level_codes(cols)
-            start = start + np.maximum(code, 0) * self.size
-            values = values * (code >= 0)[:, None]
-        idx[:] = start[:, None] + np.arange(bs.ORDER, dtype=np.int32)
-        if spec.multiplier:
-            values = values * cols[spec.multiplier][:, None]
-        val[:] = values
+        bs.encode_rows(self.knots, cols[spec.column], col0, idx, val,
+                       codes=self.level_codes(cols) if self.levels else None, stride=self.size,
+                       multiplier=cols[spec.multiplier] if spec.multiplier else None)
 
     def level_codes(self, cols) -> np.ndarray:
         return _codes(cols[self.spec.per], self._value_set)
@@ -775,10 +768,8 @@ class CyclicBasis(Basis):
         return float(self.knots[3])
 
     def encode(self, cols, idx, val, col0):
-        first, values = bs.evaluate_periodic(self.knots, self.period, cols[self.spec.column])
-        k = self.n_raw
-        idx[:] = (first[:, None] + np.arange(bs.ORDER, dtype=np.int32)) % k + col0
-        val[:] = values
+        bs.encode_rows(self.knots, cols[self.spec.column], col0, idx, val, period=self.period,
+                       wrap=self.n_raw)
 
     def penalties(self):
         ext = bs.curvature_penalty(self.knots, self.origin, self.origin + self.period)
@@ -823,6 +814,10 @@ class SurfaceBasis(Basis):
         return int(np.prod(self.sizes))
 
     def encode(self, cols, idx, val, col0):
+        if len(self.margins) == 2:
+            (k1, k2), (c1, c2) = self.margins, self.spec.columns
+            bs.encode_tensor2(k1, cols[c1], k2, cols[c2], col0, idx, val)
+            return
         n = idx.shape[0]
         index = np.full((n, 1), col0, dtype=np.int64)
         value = np.ones((n, 1))
