@@ -54,7 +54,8 @@ def cmd_fit(args) -> int:
         raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
     fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
-                         threads=args.threads or spec.threads, progress=_progress(args))
+                         threads=args.threads or spec.threads, progress=_progress(args),
+                         cluster=args.cluster)
     fit.save(out)
     if not args.quiet:
         print(fit.summary())
@@ -87,10 +88,12 @@ def cmd_score(args) -> int:
 
     fit = load(args.model)
     keep = [k for k in (args.keep or "").split(",") if k]
+    extra = {"cluster": args.cluster, "threads": args.threads} if args.cluster else {}
     report = fit.score(args.input, args.output, keep=keep, terms=args.terms, se=args.se,
                        unseen=args.unseen, batch_rows=args.batch_rows,
-                       progress=_progress(args))
-    print(f"scored {report.rows:,} rows into {args.output}", file=sys.stderr)
+                       progress=_progress(args), **extra)
+    where = f"the part files of {args.output}" if args.cluster else args.output
+    print(f"scored {report.rows:,} rows into {where}", file=sys.stderr)
     return EXIT_OK
 
 
@@ -196,7 +199,12 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("-o", "--output", help="model file to write (default: SPEC with .json)")
     f.add_argument("--data", help="data source, overriding the spec's 'data'")
     f.add_argument("--batch-rows", type=int, default=None)
-    f.add_argument("--threads", type=int, default=None)
+    f.add_argument("--threads", type=int, default=None,
+                   help="cores to use (with --cluster: threads per task, default 1)")
+    f.add_argument("--cluster", metavar="ADDRESS", default=None,
+                   help="run the data passes on the Dask cluster whose scheduler is at "
+                        "ADDRESS (e.g. tcp://host:8786); needs tallgam[dask] and data on "
+                        "storage every worker reads")
     common(f)
     f.set_defaults(func=cmd_fit)
 
@@ -207,13 +215,19 @@ def build_parser() -> argparse.ArgumentParser:
     sc = sub.add_parser("score", help="stream predictions of a source into Parquet")
     sc.add_argument("model")
     sc.add_argument("input", help="data to score: file, glob or directory")
-    sc.add_argument("-o", "--output", required=True, help="Parquet file to write")
+    sc.add_argument("-o", "--output", required=True,
+                    help="Parquet file to write (with --cluster: a directory of part files)")
     sc.add_argument("--keep", help="comma-separated columns to carry through (e.g. keys)")
     sc.add_argument("--terms", action="store_true", help="add each term's contribution")
     sc.add_argument("--se", action="store_true", help="add standard errors")
     sc.add_argument("--unseen", choices=["error", "base"], default="error",
                     help="unseen levels: stop (default) or use the base level")
     sc.add_argument("--batch-rows", type=int, default=1_000_000)
+    sc.add_argument("--cluster", metavar="ADDRESS", default=None,
+                    help="score on the Dask cluster whose scheduler is at ADDRESS; writes "
+                         "OUTPUT as a directory of part files, only when all succeeded")
+    sc.add_argument("--threads", type=int, default=None,
+                    help="with --cluster: threads per task (default 1)")
     common(sc)
     sc.set_defaults(func=cmd_score)
 

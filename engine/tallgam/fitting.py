@@ -74,7 +74,7 @@ class FitState:
 
 
 def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-              progress=False):
+              progress=False, cluster=None):
     from .result import FitResult
 
     if int(batch_rows) < 1:
@@ -86,13 +86,18 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
     if threads:
         numba.set_num_threads(min(int(threads), numba.config.NUMBA_NUM_THREADS))
     t0 = time.perf_counter()
+    runner = None
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
+            if cluster is not None:  # imported only here: the local path never loads dask
+                from .cluster import ClusterPasses
+
+                runner = ClusterPasses.open(cluster, data, source, callback, threads=threads)
             if getattr(model.family, "grid", None):
-                fs = _profile_tweedie_power(model, source, int(batch_rows), callback)
+                fs = _profile_tweedie_power(model, source, int(batch_rows), callback, runner)
             else:
-                fs = _fit(model, source, int(batch_rows), callback)
+                fs = _fit(model, source, int(batch_rows), callback, runner)
         for w in caught:
             if str(w.message) not in fs.notes:
                 fs.notes.append(str(w.message))
@@ -101,13 +106,15 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
         callback(Event("end", "done"))
     finally:
         numba.set_num_threads(old_threads)
+        if runner is not None:
+            runner.close()
         if owned:
             source.close()
     return FitResult.from_state(fs)
 
 
-def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callback
-                           ) -> FitState:
+def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callback,
+                           runner=None) -> FitState:
     """Fit at every candidate Tweedie power, then at the maximum of a parabola through the
     best candidate and its neighbours; keep the fit with the highest log-likelihood."""
     from dataclasses import replace
@@ -117,7 +124,7 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
     for p in grid:
         callback(Event("note", "profile", message=f"tweedie power {p:g}"))
         fits[p] = _fit(replace(model, family=model.family.at_power(p)), source, batch_rows,
-                       callback)
+                       callback, runner)
     lls = np.array([fits[p].loglik for p in grid])
     i = int(np.argmax(lls))
     if 0 < i < len(grid) - 1:
@@ -127,7 +134,7 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
             p_star = float(np.clip(-b / (2 * a), x[0], x[2]))
             if min(abs(p_star - g) for g in grid) > 1e-3:
                 fits[p_star] = _fit(replace(model, family=model.family.at_power(p_star)),
-                                    source, batch_rows, callback)
+                                    source, batch_rows, callback, runner)
     best = max(fits, key=lambda p: fits[p].loglik)
     fs = fits[best]
     fs.passes = sum(f.passes for f in fits.values())

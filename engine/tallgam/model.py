@@ -103,16 +103,21 @@ class Model:
             raise SpecError("max_iterations must be at least 1")
 
     def fit(self, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-            progress=False):
+            progress=False, cluster=None):
         """Fit the model to ``data`` (see :func:`tallgam.sources.open_source`).
 
         ``batch_rows`` bounds the rows held in memory at once; ``threads`` the cores used
-        (default: all); ``progress`` is False, True (a bar on a terminal) or a callable
-        receiving :class:`tallgam.progress.Event` objects.
+        (default: all; on a cluster, the threads of each task, default 1); ``progress`` is
+        False, True (a bar on a terminal) or a callable receiving
+        :class:`tallgam.progress.Event` objects. ``cluster``: a ``distributed.Client``, a
+        Dask scheduler address (``"tcp://host:8786"``) or a Dask cluster object runs the
+        data passes on that cluster (``data`` must then be files every worker can read;
+        see docs/distributed.md); the result equals the local fit up to rounding.
         """
         from .fitting import fit_model
 
-        return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress)
+        return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress,
+                         cluster=cluster)
 
     def to_dict(self) -> dict:
         return {

@@ -244,8 +244,17 @@ class FitResult:
             return values, _cat([p[1][f"{output}_se"] for p in parts])
         return values
 
-    def score(self, data, output_path, **kwargs):
-        """Stream predictions of ``data`` to a Parquet file (see :mod:`tallgam.scoring`)."""
+    def score(self, data, output_path, *, cluster=None, **kwargs):
+        """Stream predictions of ``data`` to a Parquet file (see :mod:`tallgam.scoring`).
+
+        With ``cluster`` (a ``distributed.Client``, scheduler address or Dask cluster
+        object) the partitions of ``data`` are scored on the cluster's workers and
+        ``output_path`` becomes a directory of Parquet part files, which appears only when
+        every part succeeded (see docs/distributed.md)."""
+        if cluster is not None:
+            from .scoring import score_to_directory
+
+            return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
         from .scoring import score_to_parquet
 
         return score_to_parquet(self, data, output_path, **kwargs)

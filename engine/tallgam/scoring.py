@@ -174,8 +174,6 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     import os
     import tempfile
 
-    import pyarrow.parquet as pq
-
     from .progress import Event, make_callback
     from .sources import open_source
 
@@ -188,12 +186,40 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     owned = source is not data
     fd, tmp = tempfile.mkstemp(prefix=".tallgam-score-", suffix=".parquet.tmp", dir=folder)
     os.close(fd)
-    writer = None
     try:
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
         callback(Event("start", "scoring"))
-        done = 0
+
+        def advance(done: int) -> None:
+            callback(Event("advance", "scoring", rows=done))
+        done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
+                            on_rows=advance)
+        os.replace(tmp, out)
+        callback(Event("end", "scoring", rows=done))
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
+        if owned:
+            source.close()
+    scorer.report.warn()
+    return scorer.report
+
+
+def write_scores(scorer: Scorer, path: str, *, se: bool, terms: bool, batch_rows: int,
+                 on_rows=None, write_empty: bool = True, stop=None) -> int:
+    """Write the predictions of ``scorer``'s source to the Parquet file ``path`` (the
+    caller gives a temporary name and renames it). Returns the rows written. Without rows,
+    an empty file with the columns is written, or none when ``write_empty`` is False.
+    ``stop()``, checked before every batch, may raise to abandon the file."""
+    import pyarrow.parquet as pq
+
+    fit = scorer.fit
+    writer = None
+    done = 0
+    try:
         for kept, arrays in scorer.batches(batch_rows, se=se, terms=terms):
+            if stop is not None:
+                stop()
             cols = {name: kept.column(i) for i, name in enumerate(kept.schema.names)}
             cols["prediction"] = pa.array(arrays["response"])
             cols["link"] = pa.array(arrays["link"])
@@ -205,23 +231,126 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
                     cols[f"term:{b.label}"] = pa.array(arrays[b.label])
             table = pa.table(cols)
             if writer is None:
-                writer = pq.ParquetWriter(tmp, table.schema)
+                writer = pq.ParquetWriter(path, table.schema)
             writer.write_table(table)
             done += table.num_rows
-            callback(Event("advance", "scoring", rows=done))
-        if writer is None:  # no rows: still write a valid, empty file with the right columns
-            names = list(keep) + ["prediction", "link"]
-            writer = pq.ParquetWriter(tmp, pa.schema([(n, pa.float64()) for n in names]))
-        writer.close()
-        writer = None
-        os.replace(tmp, out)
-        callback(Event("end", "scoring", rows=done))
+            if on_rows is not None:
+                on_rows(done)
+        if writer is None and write_empty:  # no rows: a valid, empty file with the columns
+            names = list(scorer.keep) + ["prediction", "link"]
+            writer = pq.ParquetWriter(path, pa.schema([(n, pa.float64()) for n in names]))
+        if writer is not None:
+            writer.close()
+            writer = None
     finally:
         if writer is not None:
             writer.close()
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    return done
+
+
+PART_NAME = "part-{:05d}.parquet"
+_PART_PATTERN = r"part-\d{5}\.parquet"
+
+
+def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] | list[str] = (),
+                       terms: bool = False, se: bool = False, with_offset: bool = True,
+                       unseen: str = "error", batch_rows: int = 1_000_000,
+                       threads: int | None = None, progress=False) -> ScoreReport:
+    """Score ``data`` on a Dask cluster into a directory of Parquet part files.
+
+    One task per partition of ``data`` (see :mod:`tallgam.cluster`); each writes
+    ``part-NNNNN.parquet`` (NNNNN: the partition number; a partition without rows writes
+    none) into a hidden temporary directory beside ``output_dir``, under a temporary name
+    renamed when complete. The directory is renamed to ``output_dir`` only when every part
+    succeeded; on any failure the temporary directory is removed, so a failed run leaves no
+    output. Columns as in :func:`score_to_parquet`; rows in input order within each part.
+    An existing ``output_dir`` is replaced only if it holds nothing but part files.
+    """
+    import os
+    import re
+    import shutil
+    import tempfile
+    import uuid
+
+    import pyarrow.parquet as pq
+
+    from .cluster import ClusterSession, partitions_of, score_task
+    from .progress import Event, make_callback
+    from .sources import open_source
+
+    callback = make_callback(progress)
+    out = os.path.abspath(os.fspath(output_dir))
+    folder = os.path.dirname(out)
+    if not os.path.isdir(folder):
+        raise DataError(f"the output folder {folder!r} does not exist")
+    if os.path.isfile(out):
+        raise DataError(f"{out!r} is a file; scoring on a cluster writes a directory of part "
+                        "files: give a directory name")
+    if os.path.isdir(out):
+        other = [e for e in sorted(os.listdir(out)) if not re.fullmatch(_PART_PATTERN, e)]
+        if other:
+            raise DataError(f"the output directory {out!r} exists and holds other files than "
+                            f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
+    source = open_source(data)
+    owned = source is not data
+    session = tmp = None
+    try:
+        # checks the model's columns against the data here, before any task runs
+        scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
+        parts = partitions_of(data, source)
+        session = ClusterSession(cluster)
+        tmp = tempfile.mkdtemp(prefix=".tallgam-score-", dir=folder)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o777 & ~umask)  # workers may run as another user
+        session.check(sorted({f for p in parts for f in p.files}), [tmp])
+        options = {"keep": tuple(keep), "terms": terms, "se": se, "with_offset": with_offset,
+                   "unseen": unseen, "batch_rows": int(batch_rows)}
+        callback(Event("start", "scoring"))
+        done = [0]
+
+        def advance(i, report):
+            done[0] += report.rows
+            callback(Event("advance", "scoring", rows=done[0]))
+
+        def abort():  # tasks still to start, or between batches, give up on seeing this
+            with open(os.path.join(tmp, ABORT_MARKER), "w"):
+                pass
+        reports = session.run(score_task, parts, fit, (tmp, options, threads), "score",
+                              advance, abort=abort)
+        for r in reports:
+            scorer.report.rows += r.rows
+            scorer.report.clamped.update(r.clamped)
+            scorer.report.unseen.update(r.unseen)
+        for entry in os.listdir(tmp):  # what workers that died while writing left behind
+            if not re.fullmatch(_PART_PATTERN, entry):
+                os.remove(os.path.join(tmp, entry))
+        if not os.listdir(tmp):  # no rows at all: one valid, empty part with the columns
+            names = list(keep) + ["prediction", "link"]
+            pq.write_table(pa.table({n: pa.array([], pa.float64()) for n in names}),
+                           os.path.join(tmp, PART_NAME.format(0)))
+        if os.path.isdir(out):
+            old = os.path.join(folder, f".tallgam-old-{uuid.uuid4().hex[:10]}")
+            os.rename(out, old)
+            try:
+                os.rename(tmp, out)
+            except BaseException:
+                os.rename(old, out)
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
+        tmp = None
+        callback(Event("end", "scoring", rows=done[0]))
+    finally:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        if session is not None:
+            session.close()
         if owned:
             source.close()
     scorer.report.warn()
     return scorer.report
+
+
+ABORT_MARKER = ".abort"
