@@ -14,6 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 import pyarrow as pa
 
+from . import kernels
 from .terms import Basis
 
 CHUNK_ROWS = 65_536
@@ -83,6 +84,24 @@ class Design:
             stop = min(n, start + CHUNK_ROWS)
             part = {k: (v[start:stop] if isinstance(v, np.ndarray) else v) for k, v in cols.items()}
             yield slice(start, stop), self._encode_block(part, codes, start, stop)
+
+    # the interface a data pass uses (shared with tallgam.discrete.DiscreteDesign)
+    def read(self, cols: dict) -> Iterator[tuple[slice, Encoded]]:
+        """A batch's rows in the blocks the kernels take."""
+        return self.blocks(cols)
+
+    def pass_coefficients(self, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """β split for the kernels: dense group, level group."""
+        return (np.ascontiguousarray(beta[:self.pd]), np.ascontiguousarray(beta[self.pd:]))
+
+    def predict(self, enc: Encoded, coef, out: np.ndarray) -> None:
+        """out += X β for one block (``coef`` from :meth:`pass_coefficients`)."""
+        kernels.linear_predictor(enc.idx, enc.val, enc.lev, coef[0], coef[1], out)
+
+    def accumulator(self, threads: int):
+        from .state import Accumulator
+
+        return Accumulator(self.pd, [b.n_raw for b in self.levels], threads)
 
     def _encode_block(self, cols, codes, start, stop) -> Encoded:
         n = stop - start

@@ -22,7 +22,7 @@ import numpy as np
 
 from .dense import Constraints
 from .design import Design
-from .errors import ConvergenceWarning, DataError, FitError, TallgamWarning
+from .errors import ConvergenceWarning, DataError, FitError, SpecError, TallgamWarning
 from .inputs import WC, check_profile, complete_rows_condition, model_inputs, resolved_expressions
 from .model import Model
 from .passes import LOGLIK_STEP, LocalPasses, PassPlan
@@ -74,11 +74,14 @@ class FitState:
 
 
 def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-              progress=False, cluster=None):
+              progress=False, cluster=None, discretize: bool | int = False,
+              scratch: str | bool | None = None):
     from .result import FitResult
 
     if int(batch_rows) < 1:
         raise DataError(f"batch_rows must be a positive integer, got {batch_rows!r}")
+    points = _grid_points(discretize)
+    policy = _scratch_policy(scratch) if points else None
     callback = make_callback(progress)
     source = open_source(data, threads=threads)
     owned = source is not data
@@ -94,10 +97,13 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
                 from .cluster import ClusterPasses
 
                 runner = ClusterPasses.open(cluster, data, source, callback, threads=threads)
-            if getattr(model.family, "grid", None):
-                fs = _profile_tweedie_power(model, source, int(batch_rows), callback, runner)
             else:
-                fs = _fit(model, source, int(batch_rows), callback, runner)
+                runner = LocalPasses(source, callback, cache=policy)
+            if getattr(model.family, "grid", None):
+                fs = _profile_tweedie_power(model, source, int(batch_rows), callback, runner,
+                                            points)
+            else:
+                fs = _fit(model, source, int(batch_rows), callback, runner, points)
         for w in caught:
             if str(w.message) not in fs.notes:
                 fs.notes.append(str(w.message))
@@ -113,8 +119,39 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
     return FitResult.from_state(fs)
 
 
+def _grid_points(discretize) -> int | None:
+    """discretize= as grid values per binned column (None: not discretized)."""
+    from .discrete import DEFAULT_POINTS, MIN_POINTS
+
+    if discretize is None or discretize is False:
+        return None
+    if discretize is True:
+        return DEFAULT_POINTS
+    if isinstance(discretize, (int, np.integer)) and int(discretize) >= MIN_POINTS:
+        return int(discretize)
+    raise SpecError(f"discretize takes False, True or a number of grid values of at least "
+                    f"{MIN_POINTS} for binned columns, got {discretize!r}")
+
+
+def _scratch_policy(scratch):
+    """scratch= as a :class:`~tallgam.scratch.ScratchPolicy` (None: no scratch copy)."""
+    import os
+
+    from .scratch import ScratchPolicy
+
+    if scratch is False:
+        return None
+    if scratch is None or scratch is True:
+        return ScratchPolicy()
+    folder = os.fspath(scratch)
+    if not os.path.isdir(folder):
+        raise SpecError(f"the scratch folder {folder!r} does not exist; create it, or pass "
+                        "scratch=None for the system's temporary folder")
+    return ScratchPolicy(folder=folder)
+
+
 def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callback,
-                           runner=None) -> FitState:
+                           runner, points: int | None = None) -> FitState:
     """Fit at every candidate Tweedie power, then at the maximum of a parabola through the
     best candidate and its neighbours; keep the fit with the highest log-likelihood."""
     from dataclasses import replace
@@ -124,7 +161,7 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
     for p in grid:
         callback(Event("note", "profile", message=f"tweedie power {p:g}"))
         fits[p] = _fit(replace(model, family=model.family.at_power(p)), source, batch_rows,
-                       callback, runner)
+                       callback, runner, points)
     lls = np.array([fits[p].loglik for p in grid])
     i = int(np.argmax(lls))
     if 0 < i < len(grid) - 1:
@@ -134,7 +171,7 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
             p_star = float(np.clip(-b / (2 * a), x[0], x[2]))
             if min(abs(p_star - g) for g in grid) > 1e-3:
                 fits[p_star] = _fit(replace(model, family=model.family.at_power(p_star)),
-                                    source, batch_rows, callback, runner)
+                                    source, batch_rows, callback, runner, points)
     best = max(fits, key=lambda p: fits[p].loglik)
     fs = fits[best]
     fs.passes = sum(f.passes for f in fits.values())
@@ -146,7 +183,8 @@ def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callba
     return fs
 
 
-def _fit(model: Model, source: Source, batch_rows: int, callback, runner=None) -> FitState:
+def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
+         points: int | None = None) -> FitState:
     fam = model.family
     inputs = model_inputs(model, source, model.terms)
     callback(Event("start", "profile"))
@@ -171,19 +209,28 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner=None) -
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
-    run = _Run(model, fam, runner or LocalPasses(source, callback), inputs, design, profile,
-               batch_rows, callback)
-    return run.iterate(dropped)
+    discrete = None
+    if points is not None:
+        from .discrete import DiscreteDesign
+
+        discrete = DiscreteDesign(design, profile, points)
+    run = _Run(model, fam, runner, inputs, design, profile, batch_rows, callback, discrete)
+    fs = run.iterate(dropped)
+    if discrete is not None:
+        fs.notes.extend(discrete.notes())
+    return fs
 
 
 class _Run:
     """The PIRLS iterations of one fit (state between data passes). ``runner`` carries
     out the passes: :class:`~tallgam.passes.LocalPasses` here, or a cluster runner."""
 
-    def __init__(self, model, fam, runner, inputs, design, profile, batch_rows, callback):
+    def __init__(self, model, fam, runner, inputs, design, profile, batch_rows, callback,
+                 discrete=None):
         self.model, self.fam, self.link = model, fam, model.link
         self.runner, self.inputs, self.design = runner, inputs, design
         self.profile, self.batch_rows, self.callback = profile, batch_rows, callback
+        self.discrete = discrete
         self.y_mean = profile["response"].mean
         self.start_shift = _start_shift(model, profile)
         self.null_beta0 = self.start_shift
@@ -196,7 +243,7 @@ class _Run:
                         link=self.link, beta=beta, beta_prev=beta_prev,
                         start_shift=self.start_shift, null_beta0=self.null_beta0,
                         y_mean=self.y_mean, scale_est=self.scale_est,
-                        batch_rows=self.batch_rows)
+                        batch_rows=self.batch_rows, discrete=self.discrete)
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1

@@ -169,3 +169,70 @@ def quadratic_form_rows_eliminated(idx, val, lev, pd, position, cov, e_start, e_
                 if lk >= 0 and position[pd + lk] >= 0:
                     s += 2.0 * e_cross[le, position[pd + lk]]
         out[i] = s
+
+
+# --------------------------------------------------------------------------- discretized
+# Rows arrive as codes (n × F): for every term, the row of that term's table of distinct
+# design rows (see :mod:`tallgam.discrete`); vec_off[f] is the first per-code slot of term f.
+
+
+@numba.njit(cache=True, parallel=True)
+def accumulate_discrete(codes, w, r, wp, vec_off, mode, pa, pb, off, stride, f_start,
+                        tab_off, tab_idx, tab_val, tab_width, cells, vec):
+    """Add one block of coded rows to per-thread cross-tables.
+
+    vec : (T, 3, Σm) per-code sums of w, w·r and wp.  cells : (T, C) the pair tables: mode
+    0 a cross-table C[code_a, code_b] += w (stride m_b); mode 1 the code of a against the
+    expanded design row of b, H[code_a, j] += w·x_bj (stride n_raw_b); mode 2 both expanded,
+    F[i, j] += w·x_ai·x_bj (stride n_raw_b). Threads own contiguous row ranges.
+    """
+    n, F = codes.shape
+    P = mode.shape[0]
+    n_threads = cells.shape[0]
+    chunk = (n + n_threads - 1) // n_threads
+    for t in numba.prange(n_threads):
+        lo = t * chunk
+        hi = min(n, lo + chunk)
+        ct = cells[t]
+        vt = vec[t]
+        for i in range(lo, hi):
+            wi = w[i]
+            wri = wi * r[i]
+            wpi = wp[i]
+            for f in range(F):
+                j = vec_off[f] + codes[i, f]
+                vt[0, j] += wi
+                vt[1, j] += wri
+                vt[2, j] += wpi
+            for p in range(P):
+                a = pa[p]
+                b = pb[p]
+                ka = codes[i, a]
+                kb = codes[i, b]
+                md = mode[p]
+                if md == 0:
+                    ct[off[p] + ka * stride[p] + kb] += wi
+                elif md == 1:
+                    rb = tab_off[b] + kb
+                    base = off[p] + ka * stride[p] - f_start[b]
+                    for y in range(tab_width[b]):
+                        ct[base + tab_idx[rb, y]] += wi * tab_val[rb, y]
+                else:
+                    ra = tab_off[a] + ka
+                    rb = tab_off[b] + kb
+                    for x in range(tab_width[a]):
+                        wa = wi * tab_val[ra, x]
+                        base = off[p] + (tab_idx[ra, x] - f_start[a]) * stride[p] - f_start[b]
+                        for y in range(tab_width[b]):
+                            ct[base + tab_idx[rb, y]] += wa * tab_val[rb, y]
+
+
+@numba.njit(cache=True, parallel=True)
+def discrete_predictor(codes, coef, vec_off, out):
+    """out[i] += Σ_f coef[vec_off[f] + codes[i, f]]  (shape (n,))."""
+    n, F = codes.shape
+    for i in numba.prange(n):
+        s = 0.0
+        for f in range(F):
+            s += coef[vec_off[f] + codes[i, f]]
+        out[i] += s

@@ -103,7 +103,8 @@ class Model:
             raise SpecError("max_iterations must be at least 1")
 
     def fit(self, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-            progress=False, cluster=None):
+            progress=False, cluster=None, discretize: bool | int = False,
+            scratch: str | bool | None = None):
         """Fit the model to ``data`` (see :func:`tallgam.sources.open_source`).
 
         ``batch_rows`` bounds the rows held in memory at once; ``threads`` the cores used
@@ -113,11 +114,19 @@ class Model:
         Dask scheduler address (``"tcp://host:8786"``) or a Dask cluster object runs the
         data passes on that cluster (``data`` must then be files every worker can read;
         see docs/distributed.md); the result equals the local fit up to rounding.
+
+        ``discretize``: True (or a number of grid values per column, default 200) runs the
+        data passes on tables of distinct design rows (see :mod:`tallgam.discrete` and
+        docs/performance.md): exact for whole-number columns of up to 1024 values, other
+        numeric columns rounded to the nearest grid value; several times faster per pass.
+        ``scratch`` (discretized fits): a folder for a scratch copy of the coded rows that
+        later passes read instead of the data (None: the system's temporary folder; False:
+        read the data every pass); removed when the fit ends.
         """
         from .fitting import fit_model
 
         return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress,
-                         cluster=cluster)
+                         cluster=cluster, discretize=discretize, scratch=scratch)
 
     def to_dict(self) -> dict:
         return {

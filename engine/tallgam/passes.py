@@ -14,13 +14,12 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from . import kernels
 from .design import Design, batch_columns
 from .errors import FitError
 from .inputs import WC, Inputs, O, W, Y
 from .progress import Event
 from .sources import Source
-from .state import Accumulator, PassState
+from .state import PassState
 
 LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
 
@@ -41,136 +40,194 @@ class PassPlan:
     y_mean: float
     scale_est: float
     batch_rows: int
+    discrete: object = None   # a tallgam.discrete.DiscreteDesign: run on coded rows
+
+    @property
+    def layout(self):
+        """What encodes the rows: the design, or its discretized form."""
+        return self.discrete if self.discrete is not None else self.design
 
 
 class LocalPasses:
-    """Runs passes over one source in this process (the default runner)."""
+    """Runs passes over one source in this process (the default runner).
 
-    def __init__(self, source: Source, callback=None):
+    With ``cache`` (a :class:`~tallgam.scratch.ScratchPolicy`), a discretized fit writes
+    the coded rows to a scratch folder during its first pass and reads them from there in
+    later passes instead of the source; :meth:`close` removes the folder."""
+
+    def __init__(self, source: Source, callback=None, cache=None):
         self.source = source
         self.callback = callback
+        self.policy = cache
+        self.scratch = None
+
+    def _scratch(self, plan: PassPlan, rows: int | None):
+        if plan.discrete is None or self.policy is None:
+            return None
+        from .scratch import prepare
+
+        self.scratch = prepare(self.scratch, self.policy, plan, rows)
+        return self.scratch
 
     def working(self, plan: PassPlan, task: str, total: int | None) -> PassState:
-        return working_pass(self.source, plan, self.callback, task, total)
+        return working_pass(self.source, plan, self.callback, task, total,
+                            scratch=self._scratch(plan, total))
 
     def loglik(self, plan: PassPlan, scale: float, task: str, total: int | None) -> float:
-        return loglik_pass(self.source, plan, scale, self.callback, task, total)
+        return loglik_pass(self.source, plan, scale, self.callback, task, total,
+                           scratch=self._scratch(plan, total))
+
+    def close(self) -> None:
+        if self.scratch is not None:
+            self.scratch.remove()
+            self.scratch = None
 
 
 def _quiet(event) -> None:
     return None
 
 
+def row_blocks(source: Source, plan: PassPlan, scratch=None):
+    """The rows of a pass, block by block, in kernel form: yields ``(y, w, o, wc, block,
+    done)`` where w, o, wc are None when the model has no weights, offset or separate
+    constraint weights, and ``done`` is the count of rows read when the block ends a batch
+    (else None). Rows come from the scratch copy when it is complete, else from the source
+    (and are written to the scratch copy when one is being made)."""
+    inputs, layout = plan.inputs, plan.layout
+    if scratch is not None and scratch.complete:
+        yield from scratch.blocks(plan.batch_rows)
+        return
+    done = 0
+    try:
+        for batch in source.batches(inputs.select, inputs.where, plan.batch_rows):
+            cols = batch_columns(batch, inputs.level_names)
+            y_all = cols[Y]
+            w_all = cols[W] if inputs.has_weights else None
+            o_all = cols[O] if inputs.has_offset else None
+            wc_all = cols[WC] if inputs.has_cweights else None
+            done += batch.num_rows
+            parts = list(layout.read(cols)) if scratch is not None else layout.read(cols)
+            last = None
+            for sl, block in parts:
+                if last is not None:
+                    yield last
+                last = (y_all[sl], _part(w_all, sl), _part(o_all, sl), _part(wc_all, sl),
+                        block, None)
+                if scratch is not None:
+                    scratch.append(block, *last[:4])
+            if last is not None:
+                yield last[:5] + (done,)
+        if scratch is not None:
+            scratch.commit()
+    finally:
+        if scratch is not None and not scratch.complete:
+            scratch.discard()
+
+
+def _part(values, sl):
+    return values[sl] if values is not None else None
+
+
 def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pass",
-                 total: int | None = None) -> PassState:
+                 total: int | None = None, scratch=None) -> PassState:
     """One pass over ``source``: the working model at ``plan.beta`` (or at the starting
     values when it is None) accumulated into a :class:`PassState`."""
     callback = callback or _quiet
-    fam, link, design, inputs = plan.family, plan.link, plan.design, plan.inputs
+    fam, link, layout = plan.family, plan.link, plan.layout
     beta, beta_prev = plan.beta, plan.beta_prev
-    acc = Accumulator(design.pd, [b.n_raw for b in design.levels], numba.get_num_threads())
+    acc = layout.accumulator(numba.get_num_threads())
     callback(Event("start", task, total=total))
     done = 0
     if beta is not None:
-        beta_d = np.ascontiguousarray(beta[:design.pd])
-        beta_l = np.ascontiguousarray(beta[design.pd:])
+        coef = layout.pass_coefficients(beta)
     if beta_prev is not None:
-        step_d = np.ascontiguousarray(beta[:design.pd] - beta_prev[:design.pd])
-        step_l = np.ascontiguousarray(beta[design.pd:] - beta_prev[design.pd:])
+        step = layout.pass_coefficients(beta - beta_prev)
     three_scales = not fam.scale_known and fam.loglik_in_pass and fam.name != "gaussian"
     scales = plan.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
-    for batch in source.batches(inputs.select, inputs.where, plan.batch_rows):
-        cols = batch_columns(batch, inputs.level_names)
-        y_all = cols[Y]
-        w_all = cols[W] if inputs.has_weights else None
-        o_all = cols[O] if inputs.has_offset else None
-        wc_all = cols[WC] if inputs.has_cweights else None
-        for sl, enc in design.blocks(cols):
-            y = y_all[sl]
-            m = len(y)
-            w = w_all[sl] if w_all is not None else np.ones(m)
-            o = o_all[sl] if o_all is not None else np.zeros(m)
-            wc = wc_all[sl] if wc_all is not None else w
-            extra = {}
-            if beta is None:
-                mu = _start_mu(fam, link, y, w, plan.y_mean)
-                eta = link.link(mu)
-                fitted = eta - o  # r is measured from the intercept-only anchor
-                base = plan.start_shift
-            else:
-                fitted = np.zeros(m)
-                kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, fitted)
-                eta = fitted + o
-                with np.errstate(all="ignore"):
-                    mu = link.inverse(eta)
-                    extra["invalid_rows"] = np.count_nonzero(~fam.valid_mu(mu))
-                mu = fam.clip_mu(mu)
-                base = None
-                if beta_prev is not None:
-                    change = np.zeros(m)
-                    kernels.linear_predictor(enc.idx, enc.val, enc.lev, step_d, step_l, change)
-                    extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
-                if fam.estimates_nuisance:
-                    extra["nuisance_score"], extra["nuisance_info"] = fam.nuisance_sums(y, mu, w)
-            dmu = link.mu_eta(eta)
-            var = fam.variance(mu)
-            wz = w * dmu * dmu / var
-            r = (y - mu) / dmu
-            if base is not None:
-                r = r + (fitted - base)
-            if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
-                raise FitError(
-                    f"the {link.name} link took the mean of the {fam.name} family outside its "
-                    f"range in {int(np.sum(~np.isfinite(wz * r)))} row(s) of {task} "
-                    "(e.g. a log link with non-positive means, an inverse link through zero); "
-                    "use the family's default link or check the response")
-            acc.add(enc, wz, r, wc)
-            # the intercept-and-offset (null) model, one IRLS step per pass
-            eta0 = o + plan.null_beta0
-            mu0 = fam.clip_mu(link.inverse(eta0))
-            dmu0 = link.mu_eta(eta0)
-            w0 = w * dmu0 * dmu0 / fam.variance(mu0)
-            if not three_scales:
-                ll = {"loglik": fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0}
-            else:
-                ll = dict(zip(("loglik_lo", "loglik", "loglik_hi"),
-                              (fam.loglik(y, mu, w, sc) for sc in scales)))
-            acc.add_scalars(
-                rows=m, weight=np.sum(w), resid_ss=np.sum(wz * r * r),
-                deviance=np.sum(w * fam.unit_deviance(y, mu)),
-                pearson=np.sum(w * (y - mu) ** 2 / var),
-                response_ss=np.sum(w * (y - mu) ** 2),
-                centred_ss=np.sum(w * (y - plan.y_mean) ** 2),
-                centred_sum=np.sum(w * (y - plan.y_mean)), log_weight=np.sum(np.log(w)),
-                null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
-                null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0), **ll, **extra)
-        done += batch.num_rows
-        callback(Event("advance", task, rows=done, total=total))
+    for y, w, o, wc, block, batch_done in row_blocks(source, plan, scratch):
+        m = len(y)
+        w = w if w is not None else np.ones(m)
+        o = o if o is not None else np.zeros(m)
+        wc = wc if wc is not None else w
+        extra = {}
+        if beta is None:
+            mu = _start_mu(fam, link, y, w, plan.y_mean)
+            eta = link.link(mu)
+            fitted = eta - o  # r is measured from the intercept-only anchor
+            base = plan.start_shift
+        else:
+            fitted = np.zeros(m)
+            layout.predict(block, coef, fitted)
+            eta = fitted + o
+            with np.errstate(all="ignore"):
+                mu = link.inverse(eta)
+                extra["invalid_rows"] = np.count_nonzero(~fam.valid_mu(mu))
+            mu = fam.clip_mu(mu)
+            base = None
+            if beta_prev is not None:
+                change = np.zeros(m)
+                layout.predict(block, step, change)
+                extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
+            if fam.estimates_nuisance:
+                extra["nuisance_score"], extra["nuisance_info"] = fam.nuisance_sums(y, mu, w)
+        dmu = link.mu_eta(eta)
+        var = fam.variance(mu)
+        wz = w * dmu * dmu / var
+        r = (y - mu) / dmu
+        if base is not None:
+            r = r + (fitted - base)
+        if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
+            raise FitError(
+                f"the {link.name} link took the mean of the {fam.name} family outside its "
+                f"range in {int(np.sum(~np.isfinite(wz * r)))} row(s) of {task} "
+                "(e.g. a log link with non-positive means, an inverse link through zero); "
+                "use the family's default link or check the response")
+        acc.add(block, wz, r, wc)
+        # the intercept-and-offset (null) model, one IRLS step per pass
+        eta0 = o + plan.null_beta0
+        mu0 = fam.clip_mu(link.inverse(eta0))
+        dmu0 = link.mu_eta(eta0)
+        w0 = w * dmu0 * dmu0 / fam.variance(mu0)
+        if not three_scales:
+            ll = {"loglik": fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0}
+        else:
+            ll = dict(zip(("loglik_lo", "loglik", "loglik_hi"),
+                          (fam.loglik(y, mu, w, sc) for sc in scales)))
+        acc.add_scalars(
+            rows=m, weight=np.sum(w), resid_ss=np.sum(wz * r * r),
+            deviance=np.sum(w * fam.unit_deviance(y, mu)),
+            pearson=np.sum(w * (y - mu) ** 2 / var),
+            response_ss=np.sum(w * (y - mu) ** 2),
+            centred_ss=np.sum(w * (y - plan.y_mean) ** 2),
+            centred_sum=np.sum(w * (y - plan.y_mean)), log_weight=np.sum(np.log(w)),
+            null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
+            null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0), **ll, **extra)
+        if batch_done is not None:
+            done = batch_done
+            callback(Event("advance", task, rows=done, total=total))
     callback(Event("end", task, rows=done, total=total))
     return acc.finish()
 
 
 def loglik_pass(source: Source, plan: PassPlan, scale: float, callback=None,
-                task: str = "pass", total_rows: int | None = None) -> float:
+                task: str = "pass", total_rows: int | None = None, scratch=None) -> float:
     """One light pass for the log-likelihood at ``plan.beta`` and ``scale`` (for families
     whose density is too costly to evaluate in every pass)."""
     callback = callback or _quiet
-    fam, link, design, inputs = plan.family, plan.link, plan.design, plan.inputs
-    beta_d = np.ascontiguousarray(plan.beta[:design.pd])
-    beta_l = np.ascontiguousarray(plan.beta[design.pd:])
+    fam, link, layout = plan.family, plan.link, plan.layout
+    coef = layout.pass_coefficients(plan.beta)
     callback(Event("start", task, total=total_rows, message="log-likelihood"))
     total = 0.0
     done = 0
-    for batch in source.batches(inputs.select, inputs.where, plan.batch_rows):
-        cols = batch_columns(batch, inputs.level_names)
-        for sl, enc in design.blocks(cols):
-            m = sl.stop - sl.start
-            eta = cols[O][sl].copy() if inputs.has_offset else np.zeros(m)
-            kernels.linear_predictor(enc.idx, enc.val, enc.lev, beta_d, beta_l, eta)
-            w = cols[W][sl] if inputs.has_weights else np.ones(m)
-            total += fam.loglik(cols[Y][sl], fam.clip_mu(link.inverse(eta)), w, scale)
-        done += batch.num_rows
-        callback(Event("advance", task, rows=done, total=total_rows))
+    for y, w, o, _, block, batch_done in row_blocks(source, plan, scratch):
+        m = len(y)
+        eta = o.copy() if o is not None else np.zeros(m)
+        layout.predict(block, coef, eta)
+        w = w if w is not None else np.ones(m)
+        total += fam.loglik(y, fam.clip_mu(link.inverse(eta)), w, scale)
+        if batch_done is not None:
+            done = batch_done
+            callback(Event("advance", task, rows=done, total=total_rows))
     callback(Event("end", task, rows=done, total=total_rows))
     return total
 

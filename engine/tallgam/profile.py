@@ -54,6 +54,7 @@ class FieldProfile:
     values: np.ndarray | None = None  # distinct rounded values (sorted) or level labels
     counts: np.ndarray | None = None
     weights: np.ndarray | None = None  # Σ constraint weight (exposure) per value, if any
+    integer: bool = False  # every finite value is a whole number
 
     @property
     def distinct(self) -> int:
@@ -124,8 +125,10 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
                      f"min({a}) FILTER (WHERE isfinite({a}))",
                      f"max({a}) FILTER (WHERE isfinite({a}))",
                      f"avg({a}) FILTER (WHERE isfinite({a}))",
-                     f"stddev_pop({a}) FILTER (WHERE isfinite({a}))"]
-            layout += [(f.key, k) for k in ("nonfinite", "min", "max", "mean", "sd")]
+                     f"stddev_pop({a}) FILTER (WHERE isfinite({a}))",
+                     f"bool_and({a} = floor({a})) FILTER (WHERE isfinite({a}))"]
+            layout += [(f.key, k) for k in ("nonfinite", "min", "max", "mean", "sd",
+                                            "integer")]
             if f.histogram:
                 aggs.append(f"histogram({_rounded(a)}) FILTER (WHERE isfinite({a}))")
                 layout.append((f.key, "hist"))
@@ -153,6 +156,8 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
             pending[key]["ex"] = list(value or [])
         elif what == "hist":
             _set_histogram(prof.fields[key], value or {})
+        elif what == "integer":
+            prof.fields[key].integer = bool(value)
         elif what in ("nulls", "nonfinite"):
             setattr(prof.fields[key], what, int(value or 0))
         else:

@@ -1,0 +1,394 @@
+"""Covariate discretization: the data passes on small tables of distinct design rows.
+
+Every term reads its row of the design from a few input columns. When each numeric input
+takes a modest number of values, a term's row is one of a small table of distinct rows,
+and a data row needs only one integer per term: its *code* into that table (Lang et al.
+2014; Wood, Li, Shaddick & Augustin 2017). A pass then sums weights into cross-tables of
+codes and multiplies the tables in afterwards:
+
+    X_aᵀ W X_b = X̄_aᵀ C_ab X̄_b,   C_ab[j, k] = Σ wᵢ [code_a(i) = j][code_b(i) = k],
+
+so a row costs one addition per pair of terms instead of one multiply-add per pair of
+non-zeros, and the linear predictor is one table look-up per term.
+
+* A numeric column of whole numbers spanning at most ``EXACT_SPAN`` values is coded
+  *exactly* (code = value − minimum): the fit is the undiscretized fit, up to rounding.
+  Ages, years, bonus levels and counts are like this.
+* Other numeric columns are *binned*: every value is replaced by the nearest of ``points``
+  grid values (the distinct profile values if there are that few, else half of them at
+  quantiles of the profile histogram and half evenly spread from minimum to maximum, so
+  no gap exceeds twice the range over ``points``). The largest move of a value is
+  reported per column; predictions, scoring and SQL export use the exact values.
+* Level columns are coded by their levels; a term of several inputs (a surface, a curve
+  per level, a curve times a multiplier) is coded by the combination of its inputs' codes.
+
+A pair of terms whose cross-table would be large (``CELL_LIMIT`` cells) is summed with one
+side's design row expanded instead (as many multiply-adds as that row has non-zeros), or
+both (as the undiscretized kernel does). The result is the same :class:`PassState`.
+"""
+
+from __future__ import annotations
+
+import functools
+import hashlib
+from dataclasses import dataclass
+
+import numpy as np
+
+from . import kernels
+from .design import Design
+from .errors import DataError, SpecError
+from .profile import DataProfile
+from .state import MAX_SCALARS, SCALARS, PassState, _ordered_sum
+
+DEFAULT_POINTS = 200      # grid values of a binned column (discretize=True)
+MIN_POINTS = 10
+EXACT_SPAN = 1024         # whole-number columns with at most this many values: exact codes
+CELL_LIMIT = 1 << 16      # largest cross-table of one pair of terms, in cells
+
+CROSS, EXPAND_B, EXPAND_BOTH = 0, 1, 2
+
+
+@dataclass
+class ColumnGrid:
+    """How one numeric column is coded: ``values`` (m,) the grid; exact or binned."""
+
+    column: str
+    values: np.ndarray
+    exact: bool
+    largest_move: float    # the largest |x − grid value| a row can see (0 when exact)
+
+    def codes(self, x: np.ndarray) -> np.ndarray:
+        if self.exact:
+            c = x - self.values[0]
+            if c.size and (c.min() < 0 or c.max() >= len(self.values)):
+                raise DataError(f"column {self.column!r} has values outside the range its "
+                                "profile found; the data changed during the fit")
+            return c.astype(np.int32)
+        mid = 0.5 * (self.values[1:] + self.values[:-1])
+        return np.searchsorted(mid, x).astype(np.int32)
+
+    def describe(self) -> str:
+        if self.exact:
+            return f"{self.column}: exact ({len(self.values)} whole values)"
+        return (f"{self.column}: binned to {len(self.values)} values "
+                f"(largest move {self.largest_move:.4g})")
+
+
+def column_grid(column: str, profile: DataProfile, points: int) -> ColumnGrid:
+    """The grid of a numeric column from its profile."""
+    fp = profile[f"num:{column}"]
+    lo, hi = float(fp.min), float(fp.max)
+    if fp.integer and hi - lo + 1 <= max(EXACT_SPAN, points):
+        return ColumnGrid(column, np.arange(lo, hi + 1.0), True, 0.0)
+    if fp.values is not None and 0 < len(fp.values) <= points:
+        values = np.unique(np.concatenate([fp.values.astype(np.float64), [lo, hi]]))
+    elif fp.values is not None and len(fp.values):
+        weight = fp.counts.astype(np.float64)
+        cum = np.cumsum(weight) - 0.5 * weight
+        half = points // 2   # quantiles where the rows are, an even spread for the tails
+        q = np.interp(np.linspace(0, 1, half) * cum[-1], cum, fp.values)
+        values = np.unique(np.concatenate([q, np.linspace(lo, hi, points - half)]))
+    else:
+        values = np.linspace(lo, hi, points)
+    values = values[(values >= lo) & (values <= hi)]
+    gaps = np.diff(values)
+    move = float(0.5 * gaps.max()) if len(gaps) else 0.0
+    # profile values are rounded to a few digits: a row may sit up to one rounding step off
+    return ColumnGrid(column, values, False, move)
+
+
+@dataclass
+class Factor:
+    """One term coded into a table of distinct design rows."""
+
+    label: str
+    start: int           # first raw coefficient
+    n_raw: int
+    m: int               # table rows (codes 0..m-1)
+    levels: bool         # a level term: the table is the identity
+    table_idx: np.ndarray  # (m, width) raw column of each non-zero
+    table_val: np.ndarray  # (m, width)
+
+    def matrix(self) -> np.ndarray:
+        """X̄ (m × n_raw): the table as a dense matrix."""
+        out = np.zeros((self.m, self.n_raw))
+        rows = np.repeat(np.arange(self.m), self.table_idx.shape[1])
+        np.add.at(out, (rows, self.table_idx.ravel() - self.start), self.table_val.ravel())
+        return out
+
+
+class DiscreteDesign:
+    """A :class:`~tallgam.design.Design` with every term coded into a table.
+
+    Same interface as :class:`~tallgam.design.Design` for a data pass
+    (:meth:`read`, :meth:`pass_coefficients`, :meth:`predict`, :meth:`accumulator`)."""
+
+    def __init__(self, design: Design, profile: DataProfile, points: int = DEFAULT_POINTS):
+        if int(points) < MIN_POINTS:
+            raise SpecError(f"discretize needs at least {MIN_POINTS} grid values per column, "
+                            f"got {points}")
+        self.design = design
+        self.points = int(points)
+        self.grids: dict[str, ColumnGrid] = {}
+        for b in design.bases:
+            for c, kind in (b.spec.input_kinds().items() if b.inputs else ()):
+                if kind == "numeric" and c not in self.grids:
+                    self.grids[c] = column_grid(c, profile, self.points)
+        self.factors: list[Factor] = []
+        for b, col0 in zip(design.dense, design.dense_starts):
+            self.factors.append(self._dense_factor(b, col0))
+        for b, off in zip(design.levels, design.level_offsets):
+            k = b.n_raw
+            self.factors.append(Factor(b.label, design.pd + off, k, k, True,
+                                       (design.pd + off + np.arange(k, dtype=np.int32))[:, None],
+                                       np.ones((k, 1))))
+        self._layout()
+
+    # ------------------------------------------------------------------ coding
+    def _inputs(self, b) -> list[tuple[str, str]]:
+        return list(b.spec.input_kinds().items()) if b.inputs else []
+
+    def _dense_factor(self, b, col0: int) -> Factor:
+        import pyarrow as pa
+
+        inputs = self._inputs(b)
+        sizes = []
+        axes = []
+        for c, kind in inputs:
+            if kind == "numeric":
+                axes.append(self.grids[c].values)
+            else:
+                axes.append(np.arange(len(b.levels)))
+            sizes.append(len(axes[-1]))
+        m = int(np.prod(sizes)) if sizes else 1
+        if m > np.iinfo(np.int32).max:
+            raise SpecError(f"the term {b.label} has too many value combinations to "
+                            "discretize; lower discretize's grid size")
+        mesh = np.meshgrid(*axes, indexing="ij") if axes else []
+        cols = {}
+        for (c, kind), grid in zip(inputs, mesh):
+            flat = grid.ravel()
+            cols[c] = (flat.astype(np.float64) if kind == "numeric"
+                       else pa.array([b.levels[i] for i in flat.astype(np.int64)],
+                                     type=pa.string()))
+        idx = np.empty((m, b.width), dtype=np.int32)
+        val = np.empty((m, b.width), dtype=np.float64)
+        b.encode(cols, idx, val, col0)
+        return Factor(b.label, col0, b.n_raw, m, False, idx, val)
+
+    def codes(self, cols: dict) -> np.ndarray:
+        """Codes (n × F) of a batch's rows, one column per term (dense terms first)."""
+        n = len(next(iter(cols.values()))) if cols else 0
+        out = np.empty((n, len(self.factors)), dtype=self.code_dtype)
+        col_codes = {c: g.codes(cols[c]) for c, g in self.grids.items()}
+        f = 0
+        for b in self.design.dense:
+            code = np.zeros(n, dtype=np.int64)
+            for c, kind in self._inputs(b):
+                if kind == "numeric":
+                    code = code * len(self.grids[c].values) + col_codes[c]
+                else:
+                    lv = b.level_codes(cols)
+                    _no_unknown(lv, c)
+                    code = code * len(b.levels) + lv
+            out[:, f] = code
+            f += 1
+        for b in self.design.levels:
+            lv = b.codes(cols)
+            _no_unknown(lv, b.spec.column)
+            out[:, f] = lv
+            f += 1
+        return out
+
+    # ------------------------------------------------------------------ layout
+    def _layout(self) -> None:
+        F = len(self.factors)
+        ms = [f.m for f in self.factors]
+        self.code_dtype = np.uint16 if max(ms, default=1) <= np.iinfo(np.uint16).max else np.int32
+        self.vec_off = np.concatenate([[0], np.cumsum(ms)]).astype(np.int64)
+        width = max(f.table_idx.shape[1] for f in self.factors)
+        self.tab_off = self.vec_off[:-1].copy()
+        total = int(self.vec_off[-1])
+        self.tab_idx = np.zeros((total, width), dtype=np.int32)
+        self.tab_val = np.zeros((total, width))
+        for f, off in zip(self.factors, self.tab_off):
+            w = f.table_idx.shape[1]
+            self.tab_idx[off:off + f.m, :w] = f.table_idx
+            self.tab_val[off:off + f.m, :w] = f.table_val
+        self.tab_width = np.array([f.table_idx.shape[1] for f in self.factors], dtype=np.int64)
+        self.f_start = np.array([f.start for f in self.factors], dtype=np.int64)
+        pairs = []   # (mode, code side a, other side b, cells offset, stride)
+        cells = 0
+        for a in range(F):
+            for b in range(a + 1, F):
+                fa, fb = self.factors[a], self.factors[b]
+                if fa.m == 1 or fb.m == 1:
+                    continue  # a constant term (the intercept): from the per-code sums
+                if fa.m * fb.m <= CELL_LIMIT or (fa.levels and fb.levels):
+                    pairs.append((CROSS, a, b, cells, fb.m))
+                    cells += fa.m * fb.m
+                    continue
+                options = []
+                if not fa.levels:   # code side b, a expanded
+                    options.append((fb.m * fa.n_raw, b, a))
+                if not fb.levels:
+                    options.append((fa.m * fb.n_raw, a, b))
+                size, ca, cb = min(options)
+                if fa.levels or fb.levels or size <= 16 * CELL_LIMIT:
+                    pairs.append((EXPAND_B, ca, cb, cells, self.factors[cb].n_raw))
+                    cells += size
+                else:
+                    pairs.append((EXPAND_BOTH, a, b, cells, fb.n_raw))
+                    cells += fa.n_raw * fb.n_raw
+        self.pairs = pairs
+        self.cells = cells
+        arr = np.array(pairs, dtype=np.int64).reshape(-1, 5)
+        self.pair_mode, self.pair_a, self.pair_b = arr[:, 0].copy(), arr[:, 1].copy(), \
+            arr[:, 2].copy()
+        self.pair_off, self.pair_stride = arr[:, 3].copy(), arr[:, 4].copy()
+        self._matrices: dict[int, np.ndarray] = {}
+
+    def matrix(self, f: int) -> np.ndarray:
+        if f not in self._matrices:
+            self._matrices[f] = self.factors[f].matrix()
+        return self._matrices[f]
+
+    def __getstate__(self):  # tables are rebuilt cheaply; the dense matrices are not shipped
+        state = dict(self.__dict__)
+        state["_matrices"] = {}
+        return state
+
+    @functools.cached_property
+    def fingerprint(self) -> str:
+        """Identifies the coding (grids, levels, tables), e.g. to reuse cached codes."""
+        h = hashlib.sha1()
+        for g in self.grids.values():
+            h.update(g.column.encode())
+            h.update(g.values.tobytes())
+        for f in self.factors:
+            h.update(f.label.encode())
+            h.update(f.table_idx.tobytes())
+            h.update(f.table_val.tobytes())
+        return h.hexdigest()
+
+    def notes(self) -> list[str]:
+        binned = [g.describe() for g in self.grids.values()]
+        return ["discretized covariates: " + "; ".join(binned)] if binned else []
+
+    # ------------------------------------------------------------------ pass interface
+    def read(self, cols: dict):
+        """A batch's rows as one block of codes."""
+        codes = self.codes(cols)
+        yield slice(0, codes.shape[0]), codes
+
+    def pass_coefficients(self, beta: np.ndarray) -> np.ndarray:
+        """Each term's value per code, flat (Σ m): X̄_f β_f."""
+        out = np.empty(int(self.vec_off[-1]))
+        for f, fac in enumerate(self.factors):
+            b = beta[fac.start:fac.start + fac.n_raw]
+            lo = self.vec_off[f]
+            out[lo:lo + fac.m] = b if fac.levels else self.matrix(f) @ b
+        return out
+
+    def predict(self, codes: np.ndarray, coef: np.ndarray, out: np.ndarray) -> None:
+        kernels.discrete_predictor(codes, coef, self.vec_off, out)
+
+    def accumulator(self, threads: int) -> DiscreteAccumulator:
+        return DiscreteAccumulator(self, threads)
+
+
+def _no_unknown(codes: np.ndarray, column: str) -> None:
+    if codes.size and codes.min() < 0:
+        raise DataError(f"column {column!r} has a level its profile did not find; the data "
+                        "changed during the fit")
+
+
+class DiscreteAccumulator:
+    """Per-thread cross-tables for one pass; :meth:`finish` turns them into a PassState."""
+
+    def __init__(self, dd: DiscreteDesign, threads: int):
+        self.dd = dd
+        self.cells = np.zeros((threads, dd.cells))
+        self.vec = np.zeros((threads, 3, int(dd.vec_off[-1])))
+        self.scalars = dict.fromkeys(SCALARS, 0.0)
+
+    def add(self, codes: np.ndarray, w: np.ndarray, r: np.ndarray, wc: np.ndarray) -> None:
+        dd = self.dd
+        kernels.accumulate_discrete(codes, w, r, wc, dd.vec_off, dd.pair_mode, dd.pair_a,
+                                    dd.pair_b, dd.pair_off, dd.pair_stride, dd.f_start,
+                                    dd.tab_off, dd.tab_idx, dd.tab_val, dd.tab_width,
+                                    self.cells, self.vec)
+
+    def add_scalars(self, **values: float) -> None:
+        for k, v in values.items():
+            if k in MAX_SCALARS:
+                self.scalars[k] = max(self.scalars[k], float(v))
+            else:
+                self.scalars[k] += float(v)
+
+    def finish(self) -> PassState:
+        dd = self.dd
+        design = dd.design
+        cells = _ordered_sum(self.cells)
+        vec = _ordered_sum(self.vec)
+        counts, sums, csums = vec
+        pd = design.pd
+        state = PassState.zeros(pd, [b.n_raw for b in design.levels])
+        n_dense = len(design.dense)
+
+        def per_code(f, v):
+            lo = dd.vec_off[f]
+            return v[lo:lo + dd.factors[f].m]
+
+        def left(f, M):   # X̄_fᵀ M
+            return M if dd.factors[f].levels else dd.matrix(f).T @ M
+
+        def put(a, b, block):  # block: raw columns of a × raw columns of b, a < b
+            fa, fb = dd.factors[a], dd.factors[b]
+            if a < n_dense and b < n_dense:
+                state.dense[fa.start:fa.start + fa.n_raw, fb.start:fb.start + fb.n_raw] = block
+                state.dense[fb.start:fb.start + fb.n_raw, fa.start:fa.start + fa.n_raw] = \
+                    block.T
+            elif b >= n_dense and a < n_dense:
+                lb = fb.start - pd
+                state.cross[lb:lb + fb.n_raw, fa.start:fa.start + fa.n_raw] = block.T
+            else:
+                state.pairs[(a - n_dense, b - n_dense)][...] = block
+
+        F = len(dd.factors)
+        for f, fac in enumerate(dd.factors):
+            c = per_code(f, counts)
+            if fac.levels:
+                lo = fac.start - pd
+                state.diag[lo:lo + fac.n_raw] = c
+            else:
+                X = dd.matrix(f)
+                state.dense[fac.start:fac.start + fac.n_raw,
+                            fac.start:fac.start + fac.n_raw] = X.T @ (c[:, None] * X)
+            state.rhs[fac.start:fac.start + fac.n_raw] = left(f, per_code(f, sums))
+            state.colsum[fac.start:fac.start + fac.n_raw] = left(f, per_code(f, csums))
+        for a in range(F):   # pairs with a constant term (the intercept): per-code counts
+            for b in range(a + 1, F):
+                fa, fb = dd.factors[a], dd.factors[b]
+                if fa.m == 1 or fb.m == 1:
+                    C = (per_code(b, counts)[None, :] if fa.m == 1
+                         else per_code(a, counts)[:, None])
+                    put(a, b, left(a, left(b, C.T).T))
+        for mode, a, b, off, _ in dd.pairs:
+            fa, fb = dd.factors[a], dd.factors[b]
+            if mode == CROSS:
+                C = cells[off:off + fa.m * fb.m].reshape(fa.m, fb.m)
+                block = left(a, left(b, C.T).T)
+            elif mode == EXPAND_B:
+                H = cells[off:off + fa.m * fb.n_raw].reshape(fa.m, fb.n_raw)
+                block = left(a, H)
+            else:
+                block = cells[off:off + fa.n_raw * fb.n_raw].reshape(fa.n_raw, fb.n_raw)
+            if a < b:
+                put(a, b, block)
+            else:
+                put(b, a, block.T)
+        state.scalars = dict(self.scalars)
+        return state
+
