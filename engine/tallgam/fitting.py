@@ -26,7 +26,7 @@ from .errors import ConvergenceWarning, DataError, FitError, SpecError, TallgamW
 from .inputs import WC, check_profile, complete_rows_condition, model_inputs, resolved_expressions
 from .model import Model
 from .passes import LOGLIK_STEP, LocalPasses, PassPlan
-from .profile import DataProfile, add_weighted_histograms, run_profile
+from .profile import DataProfile, add_value_histograms, run_profile
 from .progress import Event, make_callback
 from .smoothing import RHO_BOUND, Solution, select, solve
 from .sources import Source, open_source
@@ -200,9 +200,8 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
         dropped = rows_before - profile.rows
     inputs.where = where
     check_profile(profile, source, model)
-    if inputs.has_cweights:
-        add_weighted_histograms(source, profile, inputs.profile_fields,
-                                inputs.select_expr(WC), where)
+    add_value_histograms(source, profile, inputs.profile_fields,
+                         inputs.select_expr(WC) if inputs.has_cweights else None, where)
     callback(Event("end", "profile", rows=profile.rows))
     if dropped:
         warnings.warn(TallgamWarning(f"{dropped} row(s) with missing or non-finite values were "

@@ -1,11 +1,14 @@
-"""The profile pass: one aggregate query over the filtered source.
+"""The profile pass: two aggregate queries over the filtered source.
 
-It returns the row count and, per used column, NULL and non-finite counts, min, max,
-mean and standard deviation; a histogram of values rounded to four significant digits
-(exact for integer-valued columns below 10 000, which pricing data is full of) from
-which knots are placed at quantiles; level counts of categorical columns; and counts with
-a few example values of rows that break a stated rule (e.g. negative claim counts).
-Memory is bounded by the number of distinct rounded values, never by the rows.
+The first returns the row count and, per used column, NULL and non-finite counts, min,
+max, mean, standard deviation and whether every value is a whole number; level counts of
+categorical columns; and counts with a few example values of rows that break a stated rule
+(e.g. negative claim counts). The second (:func:`add_value_histograms`) counts the rows,
+and sums the exposure or weights, per value of every numeric column whose distribution is
+needed (knots at quantiles, reference values): values are placed on a grid of
+``HIST_BUCKETS`` steps from the column's minimum to its maximum, which is exact for
+whole-number columns spanning at most that many values (ages, years, bonus levels), and
+one grouped query serves all columns. Memory is bounded by the grid, never by the rows.
 """
 
 from __future__ import annotations
@@ -16,7 +19,7 @@ import numpy as np
 
 from .sources import Source
 
-ROUND_DIGITS = 4  # significant digits kept in the value histograms
+HIST_BUCKETS = 10_000  # grid steps from minimum to maximum in the value histograms
 MAX_LISTED_VALUES = 200  # numeric columns with at most this many values keep them listed
 EXAMPLES = 5
 
@@ -51,7 +54,7 @@ class FieldProfile:
     max: float | None = None
     mean: float | None = None
     sd: float | None = None
-    values: np.ndarray | None = None  # distinct rounded values (sorted) or level labels
+    values: np.ndarray | None = None  # histogram grid values (sorted) or level labels
     counts: np.ndarray | None = None
     weights: np.ndarray | None = None  # Σ constraint weight (exposure) per value, if any
     integer: bool = False  # every finite value is a whole number
@@ -61,7 +64,7 @@ class FieldProfile:
         return 0 if self.values is None else len(self.values)
 
     def weighted_median(self) -> float | None:
-        """The exposure- (or weight-) weighted median of the rounded values."""
+        """The exposure- (or weight-) weighted median of the histogram's values."""
         if self.values is None or not len(self.values):
             return None
         w = self.weights if self.weights is not None else self.counts
@@ -101,14 +104,10 @@ def _alias(i: int) -> str:
     return f"f{i}"
 
 
-def _rounded(v: str) -> str:
-    return (f"CASE WHEN {v} = 0 OR NOT isfinite({v}) THEN {v} ELSE "
-            f"round({v}, ({ROUND_DIGITS - 1} - floor(log10(abs({v}))))::INTEGER) END")
-
-
 def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: str | None
                 ) -> DataProfile:
-    """Profile ``fields`` over ``source`` filtered by ``where``, in one aggregate query."""
+    """Profile ``fields`` over ``source`` filtered by ``where``, in one aggregate query
+    (without the numeric value histograms: see :func:`add_value_histograms`)."""
     alias = {f.key: _alias(i) for i, f in enumerate(fields)}
     inner = []
     for f in fields:
@@ -129,9 +128,6 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
                      f"bool_and({a} = floor({a})) FILTER (WHERE isfinite({a}))"]
             layout += [(f.key, k) for k in ("nonfinite", "min", "max", "mean", "sd",
                                             "integer")]
-            if f.histogram:
-                aggs.append(f"histogram({_rounded(a)}) FILTER (WHERE isfinite({a}))")
-                layout.append((f.key, "hist"))
         else:
             aggs.append(f"histogram({a})")
             layout.append((f.key, "hist"))
@@ -169,14 +165,11 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
 
 
 def _set_histogram(fp: FieldProfile, hist: dict) -> None:
+    """Level labels and their row counts, in level order."""
     keys = list(hist.keys())
     counts = np.array([hist[k] for k in keys], dtype=np.float64)
-    if fp.kind == "numeric":
-        values = np.array(keys, dtype=np.float64)
-        order = np.argsort(values)
-    else:
-        values = np.array([str(k) for k in keys], dtype=object)
-        order = level_order(values)
+    values = np.array([str(k) for k in keys], dtype=object)
+    order = level_order(values)
     fp.values = values[order]
     fp.counts = counts[order]
 
@@ -190,33 +183,48 @@ def level_order(labels: np.ndarray) -> np.ndarray:
         return np.argsort(labels.astype(str), kind="stable")
 
 
-def add_weighted_histograms(source: Source, prof: DataProfile, fields: list[Field],
-                            weight_expr: str, where: str | None) -> None:
-    """Σ weight per rounded value of every histogram field (one grouped query), so that
-    reference values such as the exposure-weighted median are available."""
-    hist = [f for f in fields if f.kind == "numeric" and f.histogram]
+def add_value_histograms(source: Source, prof: DataProfile, fields: list[Field],
+                         weight_expr: str | None, where: str | None) -> None:
+    """Rows (and Σ weight, with ``weight_expr``) per grid value of every histogram field,
+    in one grouped query; needs the minimum and maximum from :func:`run_profile`."""
+    hist = [f for f in fields if f.kind == "numeric" and f.histogram
+            and prof.fields[f.key].min is not None]
     if not hist:
         return
     keys = [f"h{i}" for i in range(len(hist))]
-    inner = ", ".join(f"{_rounded(f'CAST({f.expr} AS DOUBLE)')} AS {k}"
-                      for f, k in zip(hist, keys))
+    grids = []
+    inner = []
+    for f, k in zip(hist, keys):
+        fp = prof.fields[f.key]
+        lo, hi = float(fp.min), float(fp.max)
+        step = 1.0 if fp.integer and hi - lo <= HIST_BUCKETS else (hi - lo) / HIST_BUCKETS
+        step = step or 1.0
+        grids.append((lo, step))
+        x = f"CAST({f.expr} AS DOUBLE)"
+        inner.append(f"CASE WHEN isfinite({x}) THEN CAST(round(({x} - {lo!r}) / {step!r}) "
+                     f"AS BIGINT) END AS {k}")
+    weight = f"CAST({weight_expr} AS DOUBLE)" if weight_expr else "1.0"
     where_sql = f" WHERE {where}" if where else ""
     sets = ", ".join(f"({k})" for k in keys)
-    text = (f"WITH s AS (SELECT {inner}, CAST({weight_expr} AS DOUBLE) AS w "
+    text = (f"WITH s AS (SELECT {', '.join(inner)}, {weight} AS w "
             f"FROM tallgam_source{where_sql}) "
-            f"SELECT grouping_id({', '.join(keys)}) AS gid, {', '.join(keys)}, sum(w) "
-            f"FROM s GROUP BY GROUPING SETS ({sets})")
+            f"SELECT grouping_id({', '.join(keys)}) AS gid, {', '.join(keys)}, count(*), "
+            f"sum(w) FROM s GROUP BY GROUPING SETS ({sets})")
     rows = source.fetchall(text)
-    per: dict[int, dict[float, float]] = {i: {} for i in range(len(hist))}
     n = len(keys)
+    per: list[dict[int, tuple[int, float]]] = [{} for _ in hist]
     for row in rows:
         gid = row[0]
         for i in range(n):
             if not (gid >> (n - 1 - i)) & 1:  # this set groups by key i
                 if row[1 + i] is not None:
-                    per[i][float(row[1 + i])] = float(row[-1] or 0.0)
+                    per[i][int(row[1 + i])] = (int(row[-2]), float(row[-1] or 0.0))
                 break
     for i, f in enumerate(hist):
         fp = prof.fields[f.key]
-        if fp.values is not None:
-            fp.weights = np.array([per[i].get(float(v), 0.0) for v in fp.values])
+        lo, step = grids[i]
+        ks = np.array(sorted(per[i]), dtype=np.int64)
+        fp.values = np.minimum(lo + ks * step, fp.max) if len(ks) else np.zeros(0)
+        fp.counts = np.array([per[i][k][0] for k in ks], dtype=np.float64)
+        if weight_expr:
+            fp.weights = np.array([per[i][k][1] for k in ks], dtype=np.float64)
