@@ -44,6 +44,7 @@ from .state import MAX_SCALARS, SCALARS, PassState, _ordered_sum
 DEFAULT_POINTS = 200      # grid values of a binned column (discretize=True)
 MIN_POINTS = 10
 EXACT_SPAN = 1024         # whole-number columns with at most this many values: exact codes
+TABLE_ROWS = 4096         # a term of k numeric inputs gets at most TABLE_ROWS^(1/k) per input
 CELL_LIMIT = 1 << 16      # largest cross-table of one pair of terms, in cells
 
 CROSS, EXPAND_B, EXPAND_BOTH = 0, 1, 2
@@ -75,11 +76,13 @@ class ColumnGrid:
                 f"(largest move {self.largest_move:.4g})")
 
 
-def column_grid(column: str, profile: DataProfile, points: int) -> ColumnGrid:
-    """The grid of a numeric column from its profile."""
+def column_grid(column: str, profile: DataProfile, points: int, exact_span: int
+                ) -> ColumnGrid:
+    """The grid of a numeric column from its profile: exact when it holds whole numbers
+    spanning at most ``exact_span`` values, else ``points`` values."""
     fp = profile[f"num:{column}"]
     lo, hi = float(fp.min), float(fp.max)
-    if fp.integer and hi - lo + 1 <= max(EXACT_SPAN, points):
+    if fp.integer and hi - lo + 1 <= exact_span:
         return ColumnGrid(column, np.arange(lo, hi + 1.0), True, 0.0)
     if fp.values is not None and 0 < len(fp.values) <= points:
         values = np.unique(np.concatenate([fp.values.astype(np.float64), [lo, hi]]))
@@ -96,6 +99,12 @@ def column_grid(column: str, profile: DataProfile, points: int) -> ColumnGrid:
     move = float(0.5 * gaps.max()) if len(gaps) else 0.0
     # profile values are rounded to a few digits: a row may sit up to one rounding step off
     return ColumnGrid(column, values, False, move)
+
+
+def _span(profile: DataProfile, column: str) -> int | None:
+    """The number of whole values a whole-number column spans (None: not whole numbers)."""
+    fp = profile[f"num:{column}"]
+    return int(fp.max - fp.min) + 1 if fp.integer else None
 
 
 @dataclass
@@ -130,11 +139,29 @@ class DiscreteDesign:
                             f"got {points}")
         self.design = design
         self.points = int(points)
-        self.grids: dict[str, ColumnGrid] = {}
+        # one grid per (column, resolution): a column in a single-input term keeps the full
+        # resolution; the inputs of a surface share TABLE_ROWS table rows between them
+        self.grids: dict[tuple[str, int], ColumnGrid] = {}
+        self._grid_of: dict[tuple[str, str], tuple[str, int]] = {}
         for b in design.bases:
-            for c, kind in (b.spec.input_kinds().items() if b.inputs else ()):
-                if kind == "numeric" and c not in self.grids:
-                    self.grids[c] = column_grid(c, profile, self.points)
+            numeric = [c for c, kind in self._inputs(b) if kind == "numeric"]
+            plan = {c: (self.points, max(EXACT_SPAN, self.points)) for c in numeric}
+            if len(numeric) > 1:  # whole-number inputs stay exact if their table fits
+                spans = {c: _span(profile, c) for c in numeric}
+                exact = [c for c in numeric if spans[c] is not None]
+                if np.prod([spans[c] for c in exact]) > TABLE_ROWS:
+                    exact = []
+                room = TABLE_ROWS / max(1, np.prod([spans[c] for c in exact]))
+                binned = len(numeric) - len(exact)
+                cap = max(MIN_POINTS, int(room ** (1.0 / max(binned, 1)) + 1e-9))
+                plan = {c: (spans[c], spans[c]) if c in exact else (min(self.points, cap), 0)
+                        for c in numeric}
+            for c in numeric:
+                points, span = plan[c]
+                key = (c, points)
+                if key not in self.grids:
+                    self.grids[key] = column_grid(c, profile, points, span)
+                self._grid_of[(b.label, c)] = key
         self.factors: list[Factor] = []
         for b, col0 in zip(design.dense, design.dense_starts):
             self.factors.append(self._dense_factor(b, col0))
@@ -157,7 +184,7 @@ class DiscreteDesign:
         axes = []
         for c, kind in inputs:
             if kind == "numeric":
-                axes.append(self.grids[c].values)
+                axes.append(self.grids[self._grid_of[(b.label, c)]].values)
             else:
                 axes.append(np.arange(len(b.levels)))
             sizes.append(len(axes[-1]))
@@ -181,13 +208,14 @@ class DiscreteDesign:
         """Codes (n × F) of a batch's rows, one column per term (dense terms first)."""
         n = len(next(iter(cols.values()))) if cols else 0
         out = np.empty((n, len(self.factors)), dtype=self.code_dtype)
-        col_codes = {c: g.codes(cols[c]) for c, g in self.grids.items()}
+        col_codes = {key: g.codes(cols[key[0]]) for key, g in self.grids.items()}
         f = 0
         for b in self.design.dense:
             code = np.zeros(n, dtype=np.int64)
             for c, kind in self._inputs(b):
                 if kind == "numeric":
-                    code = code * len(self.grids[c].values) + col_codes[c]
+                    key = self._grid_of[(b.label, c)]
+                    code = code * len(self.grids[key].values) + col_codes[key]
                 else:
                     lv = b.level_codes(cols)
                     _no_unknown(lv, c)
