@@ -185,8 +185,13 @@ def warm_up() -> float:
              tg.categorical("fuel")]
     for m in (tg.Model("y", terms=terms),
               tg.Model("claim_count", family="poisson", exposure="exposure", terms=terms)):
-        m.fit(table, batch_rows=WARMUP_ROWS // 4)
+        m.fit(table, batch_rows=WARMUP_ROWS // 4, **fit_options())
     return time.perf_counter() - t0
+
+
+def fit_options() -> dict:
+    """Extra fit() arguments: ``--discretize`` reaches the workers through the environment."""
+    return {"discretize": True} if os.environ.get("TALLGAM_BENCH_DISCRETIZE") == "1" else {}
 
 
 def sources_hash(pkg: str) -> str:
@@ -358,8 +363,8 @@ def pass_hooks() -> list[tuple[object, str, str]]:
 def profile_hooks() -> list[tuple[object, str]]:
     """The profile queries the driver runs before the first pass."""
     from tallgam import fitting
-    return [(fitting, n) for n in ("run_profile", "add_weighted_histograms")
-            if hasattr(fitting, n)]
+    return [(fitting, n) for n in ("run_profile", "add_weighted_histograms",
+                                   "add_value_histograms") if hasattr(fitting, n)]
 
 
 def engine_model_inputs():
@@ -403,7 +408,7 @@ def task_fit(name: str, files: list[str], batch_rows: int) -> dict:
         patches.replace(owner, attr, timed_profile)
     try:
         with Meter() as m:
-            fit = model.fit(files, batch_rows=batch_rows)
+            fit = model.fit(files, batch_rows=batch_rows, **fit_options())
     finally:
         patches.restore()
     st = fit.statistics
@@ -610,12 +615,16 @@ def main(argv=None) -> int:
     ap.add_argument("--delete-data", action="store_true",
                     help="remove each generated book after its size is done")
     ap.add_argument("--tasks", nargs="+", choices=TASKS, default=list(TASKS))
+    ap.add_argument("--discretize", action="store_true",
+                    help="fit with discretize=True (covariates coded into tables)")
     ap.add_argument("--live-engine", action="store_true",
                     help="import the engine from its checkout in every task instead of a copy "
                          "taken when the run starts")
     ap.add_argument("--worker", choices=TASKS, help=argparse.SUPPRESS)
     ap.add_argument("--book", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
+    if args.discretize:
+        os.environ["TALLGAM_BENCH_DISCRETIZE"] = "1"
 
     if args.worker:
         print(json.dumps(worker(args.worker, args.book, args.batch_rows, args.scan_repeats)))

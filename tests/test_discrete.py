@@ -187,3 +187,23 @@ def test_bad_discretize_values_are_refused(bad):
     with pytest.raises(SpecError, match="discretize"):
         tg.Model(response="claims", family="poisson", exposure="exposure",
                  terms=[tg.spline("age")]).fit(df, discretize=bad)
+
+
+def test_spec_file_and_command_line_discretize(tmp_path):
+    # the spec key and the flag reach the fit: the saved model's notes name the coding
+    from tallgam import cli
+
+    df = whole_number_book(4_000)
+    df.to_parquet(tmp_path / "book.parquet", index=False)
+    spec = tmp_path / "model.toml"
+    spec.write_text('data = "book.parquet"\nresponse = "claims"\nfamily = "poisson"\n'
+                    'exposure = "exposure"\ndiscretize = true\n\n'
+                    '[[term]]\nkind = "spline"\ncolumn = "age"\n')
+    assert cli.main(["fit", str(spec), "-o", str(tmp_path / "a.json"), "--quiet"]) == 0
+    assert any("exact" in n for n in tg.load(tmp_path / "a.json").notes)
+    assert cli.main(["fit", str(spec), "-o", str(tmp_path / "b.json"), "--quiet",
+                     "--discretize", "50", "--scratch", str(tmp_path)]) == 0
+    assert any("exact" in n for n in tg.load(tmp_path / "b.json").notes)
+    spec.write_text(spec.read_text().replace("discretize = true", "discretize = false"))
+    assert cli.main(["fit", str(spec), "-o", str(tmp_path / "c.json"), "--quiet"]) == 0
+    assert not any("discretized" in n for n in tg.load(tmp_path / "c.json").notes)

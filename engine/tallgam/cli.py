@@ -53,9 +53,11 @@ def cmd_fit(args) -> int:
     if not data:
         raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
+    discretize = spec.discretize if args.discretize is None else args.discretize
     fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
                          threads=args.threads or spec.threads, progress=_progress(args),
-                         cluster=args.cluster)
+                         cluster=args.cluster, discretize=discretize,
+                         scratch=args.scratch if args.scratch is not None else spec.scratch)
     fit.save(out)
     if not args.quiet:
         print(fit.summary())
@@ -201,6 +203,14 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--batch-rows", type=int, default=None)
     f.add_argument("--threads", type=int, default=None,
                    help="cores to use (with --cluster: threads per task, default 1)")
+    f.add_argument("--discretize", nargs="?", type=int, const=True, default=None,
+                   metavar="POINTS",
+                   help="code covariates into tables of distinct values: exact for whole "
+                        "numbers, other columns rounded to POINTS grid values (default 200); "
+                        "several times faster per data pass")
+    f.add_argument("--scratch", metavar="DIR", default=None,
+                   help="with --discretize: folder for the scratch copy of the coded rows "
+                        "(default: the system's temporary folder)")
     f.add_argument("--cluster", metavar="ADDRESS", default=None,
                    help="run the data passes on the Dask cluster whose scheduler is at "
                         "ADDRESS (e.g. tcp://host:8786); needs tallgam[dask] and data on "

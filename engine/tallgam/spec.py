@@ -8,6 +8,7 @@ Example::
     exposure = "exposure"
     where = "policy_year >= 2022"
     batch_rows = 1_000_000
+    discretize = true                    # code covariates into tables (faster passes)
 
     [[term]]
     kind = "spline"
@@ -45,6 +46,7 @@ MODEL_KEYS: dict[str, tuple] = {
 }
 RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
+    "discretize": (bool, int), "scratch": (str, bool),
 }
 TERM_TYPES: dict[str, tuple] = {
     "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
@@ -64,6 +66,8 @@ class RunSpec:
     threads: int | None = None
     output: str | None = None
     path: str | None = None
+    discretize: bool | int = False
+    scratch: str | bool | None = None
     extra: dict = field(default_factory=dict)
 
 
@@ -157,8 +161,12 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
         data = _resolve(data, base)
     elif isinstance(data, list):
         data = [_resolve(str(d), base) for d in data]
+    scratch = raw.get("scratch")
+    if isinstance(scratch, str):
+        scratch = _resolve(scratch, base)
     return RunSpec(model=model, data=data, batch_rows=int(raw.get("batch_rows", 1_000_000)),
-                   threads=raw.get("threads"), output=raw.get("output"), path=path)
+                   threads=raw.get("threads"), output=raw.get("output"), path=path,
+                   discretize=raw.get("discretize", False), scratch=scratch)
 
 
 def _resolve(p: str, base: str) -> str:
