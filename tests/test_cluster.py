@@ -110,6 +110,16 @@ def test_cluster_fit_equals_local_fit(book, client, make):
     assert all(e.rows == len(book[1]) for e in ends)
 
 
+def test_discretized_cluster_fit_equals_local_discretized_fit(book, client):
+    # the coded design (tables, grids) travels in the plan; workers stream and code
+    folder, _ = book
+    data = str(folder / "*.parquet")
+    local = poisson_model().fit(data, batch_rows=1500, discretize=True)
+    remote = poisson_model().fit(data, batch_rows=1500, discretize=True, cluster=client)
+    assert_same_fit(remote, local)
+    assert any(n.startswith("discretized") for n in remote.notes)
+
+
 def test_single_file_is_split_at_row_groups(tmp_path, client, monkeypatch):
     df = book_frame(seed=5, n=12000)
     path = tmp_path / "one.parquet"

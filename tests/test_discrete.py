@@ -207,3 +207,13 @@ def test_spec_file_and_command_line_discretize(tmp_path):
     spec.write_text(spec.read_text().replace("discretize = true", "discretize = false"))
     assert cli.main(["fit", str(spec), "-o", str(tmp_path / "c.json"), "--quiet"]) == 0
     assert not any("discretized" in n for n in tg.load(tmp_path / "c.json").notes)
+
+
+def test_grid_codes_equal_a_binary_search():
+    # the bucketed look-up must give numpy's searchsorted over the midpoints, ties included
+    rng = np.random.default_rng(0)
+    for _ in range(20):
+        values = np.unique(np.concatenate([rng.lognormal(0, 1, rng.integers(2, 300)), [0.0]]))
+        grid = discrete.ColumnGrid("x", values, False, 0.0)
+        x = np.concatenate([rng.lognormal(0, 1.2, 20_000), values, grid.mid, [-1.0, 1e9]])
+        np.testing.assert_array_equal(grid.codes(x), np.searchsorted(grid.mid, x))

@@ -59,6 +59,15 @@ class ColumnGrid:
     exact: bool
     largest_move: float    # the largest |x − grid value| a row can see (0 when exact)
 
+    def __post_init__(self):
+        v = self.values
+        self.mid = 0.5 * (v[1:] + v[:-1])
+        buckets = 8 * len(v)
+        span = float(v[-1] - v[0]) or 1.0
+        self.scale = buckets / span
+        starts = v[0] + np.arange(buckets) / self.scale
+        self.lut = np.searchsorted(self.mid, starts).astype(np.int64)
+
     def codes(self, x: np.ndarray) -> np.ndarray:
         if self.exact:
             c = x - self.values[0]
@@ -66,8 +75,10 @@ class ColumnGrid:
                 raise DataError(f"column {self.column!r} has values outside the range its "
                                 "profile found; the data changed during the fit")
             return c.astype(np.int32)
-        mid = 0.5 * (self.values[1:] + self.values[:-1])
-        return np.searchsorted(mid, x).astype(np.int32)
+        out = np.empty(len(x), dtype=np.int32)
+        kernels.grid_codes(np.ascontiguousarray(x, dtype=np.float64), self.mid,
+                           float(self.values[0]), self.scale, self.lut, out)
+        return out
 
     def describe(self) -> str:
         if self.exact:

@@ -236,3 +236,26 @@ def discrete_predictor(codes, coef, vec_off, out):
         for f in range(F):
             s += coef[vec_off[f] + codes[i, f]]
         out[i] += s
+
+
+@numba.njit(cache=True, parallel=True)
+def grid_codes(x, mid, lo, scale, lut, out):
+    """out[i] = the index of the grid value nearest x[i] = #(mid < x[i]) (shape (n,)).
+
+    ``mid`` (m,) holds the midpoints between sorted grid values; ``lut[j]`` is that count
+    at the start of bucket j of an even split of the range (``scale`` buckets per unit,
+    from ``lo``), so a value needs a step or two from there instead of a binary search."""
+    n = x.shape[0]
+    m = mid.shape[0]
+    L = lut.shape[0]
+    for i in numba.prange(n):
+        v = x[i]
+        j = int((v - lo) * scale) if v > lo else 0
+        if j >= L:
+            j = L - 1
+        k = lut[j]
+        while k < m and mid[k] < v:
+            k += 1
+        while k > 0 and mid[k - 1] >= v:
+            k -= 1
+        out[i] = k

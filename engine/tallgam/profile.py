@@ -110,22 +110,23 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
     (without the numeric value histograms: see :func:`add_value_histograms`)."""
     alias = {f.key: _alias(i) for i, f in enumerate(fields)}
     inner = []
+    finite = []   # numeric fields again with non-finite values as NULL: no FILTER clauses
     for f in fields:
         cast = "DOUBLE" if f.kind == "numeric" else "VARCHAR"
         inner.append(f"CAST({f.expr} AS {cast}) AS {alias[f.key]}")
+        if f.kind == "numeric":
+            a = alias[f.key]
+            finite.append(f"CASE WHEN isfinite({a}) THEN {a} END AS g{a}")
     aggs = ["count(*)"]
     layout: list[tuple[str, str]] = []
     for f in fields:
         a = alias[f.key]
-        aggs.append(f"count(*) FILTER (WHERE {a} IS NULL)")
+        aggs.append(f"count(*) - count({a})")
         layout.append((f.key, "nulls"))
         if f.kind == "numeric":
-            aggs += [f"count(*) FILTER (WHERE NOT isfinite({a}))",
-                     f"min({a}) FILTER (WHERE isfinite({a}))",
-                     f"max({a}) FILTER (WHERE isfinite({a}))",
-                     f"avg({a}) FILTER (WHERE isfinite({a}))",
-                     f"stddev_pop({a}) FILTER (WHERE isfinite({a}))",
-                     f"bool_and({a} = floor({a})) FILTER (WHERE isfinite({a}))"]
+            g = f"g{a}"
+            aggs += [f"count({a}) - count({g})", f"min({g})", f"max({g})", f"avg({g})",
+                     f"stddev_pop({g})", f"bool_and({g} = floor({g}))"]
             layout += [(f.key, k) for k in ("nonfinite", "min", "max", "mean", "sd",
                                             "integer")]
         else:
@@ -137,7 +138,8 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
         aggs += [f"count(*) FILTER (WHERE {cond})", f"min({a}, {EXAMPLES}) FILTER (WHERE {cond})"]
         layout += [(r.key, "rule_n"), (r.key, "rule_ex")]
     where_sql = f" WHERE {where}" if where else ""
-    text = (f"WITH s AS (SELECT {', '.join(inner)} FROM tallgam_source{where_sql}) "
+    text = (f"WITH r AS (SELECT {', '.join(inner)} FROM tallgam_source{where_sql}), "
+            f"s AS (SELECT *{''.join(', ' + x for x in finite)} FROM r) "
             f"SELECT {', '.join(aggs)} FROM s")
     row = source.fetchall(text)[0]
     prof = DataProfile(rows=int(row[0]))
