@@ -188,7 +188,8 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
     fam = model.family
     inputs = model_inputs(model, source, model.terms)
     callback(Event("start", "profile"))
-    profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where)
+    profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where,
+                          histograms=False)
     dropped = 0
     where = model.where
     if model.missing == "drop" and any(
@@ -196,7 +197,8 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
         keep = complete_rows_condition(inputs.profile_fields)
         where = f"({model.where}) AND ({keep})" if model.where else keep
         rows_before = profile.rows
-        profile = run_profile(source, inputs.profile_fields, inputs.rules, where)
+        profile = run_profile(source, inputs.profile_fields, inputs.rules, where,
+                              histograms=False)
         dropped = rows_before - profile.rows
     inputs.where = where
     check_profile(profile, source, model)

@@ -104,10 +104,11 @@ def _alias(i: int) -> str:
     return f"f{i}"
 
 
-def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: str | None
-                ) -> DataProfile:
-    """Profile ``fields`` over ``source`` filtered by ``where``, in one aggregate query
-    (without the numeric value histograms: see :func:`add_value_histograms`)."""
+def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: str | None,
+                histograms: bool = True, weight_expr: str | None = None) -> DataProfile:
+    """Profile ``fields`` over ``source`` filtered by ``where``: one aggregate query, then
+    with ``histograms`` the value histograms (:func:`add_value_histograms`, Σ
+    ``weight_expr`` per value when given)."""
     alias = {f.key: _alias(i) for i, f in enumerate(fields)}
     inner = []
     finite = []   # numeric fields again with non-finite values as NULL: no FILTER clauses
@@ -163,6 +164,8 @@ def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: s
     for key, info in pending.items():
         if info["n"]:
             prof.violations[key] = (info["n"], info["ex"], rule_msgs[key])
+    if histograms:
+        add_value_histograms(source, prof, fields, weight_expr, where)
     return prof
 
 
