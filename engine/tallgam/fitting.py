@@ -232,6 +232,8 @@ class _Run:
         self.runner, self.inputs, self.design = runner, inputs, design
         self.profile, self.batch_rows, self.callback = profile, batch_rows, callback
         self.discrete = discrete
+        # gaussian with the identity link: one pass gives the exact normal equations
+        self.single_pass = fam.name == "gaussian" and model.link.name == "identity"
         self.y_mean = profile["response"].mean
         self.start_shift = _start_shift(model, profile)
         self.null_beta0 = self.start_shift
@@ -244,7 +246,8 @@ class _Run:
                         link=self.link, beta=beta, beta_prev=beta_prev,
                         start_shift=self.start_shift, null_beta0=self.null_beta0,
                         y_mean=self.y_mean, scale_est=self.scale_est,
-                        batch_rows=self.batch_rows, discrete=self.discrete)
+                        batch_rows=self.batch_rows, discrete=self.discrete,
+                        more_passes=not self.single_pass)
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
@@ -274,7 +277,7 @@ class _Run:
         """
         model, design = self.model, self.design
         scale_known = self.fam.scale_known
-        exact = self.fam.name == "gaussian" and self.link.name == "identity"
+        exact = self.single_pass
         history: list[PassRecord] = []
         constraints: Constraints | None = None
         beta = None            # the iterate this pass evaluates; None: the starting means

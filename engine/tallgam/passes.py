@@ -41,6 +41,7 @@ class PassPlan:
     scale_est: float
     batch_rows: int
     discrete: object = None   # a tallgam.discrete.DiscreteDesign: run on coded rows
+    more_passes: bool = True  # False when this pass is known to be the only one
 
     @property
     def layout(self):
@@ -64,6 +65,8 @@ class LocalPasses:
     def _scratch(self, plan: PassPlan, rows: int | None):
         if plan.discrete is None or self.policy is None:
             return None
+        if not plan.more_passes and (self.scratch is None or not self.scratch.complete):
+            return None   # a single pass: a scratch copy would only cost
         from .scratch import prepare
 
         self.scratch = prepare(self.scratch, self.policy, plan, rows)
