@@ -59,7 +59,8 @@ def assert_same_fit(a, b, df, rtol):
     np.testing.assert_allclose(a.deviance, b.deviance, rtol=rtol)
     eta_a, eta_b = a.predict(df, output="link"), b.predict(df, output="link")
     np.testing.assert_allclose(eta_b, eta_a, rtol=0, atol=rtol * np.max(np.abs(eta_a)))
-    np.testing.assert_allclose(list(a.edf.values()), list(b.edf.values()), rtol=0,
+    # EDFs: measured up to 4e-7 relative (a 48-EDF random effect) across machines
+    np.testing.assert_allclose(list(a.edf.values()), list(b.edf.values()), rtol=1e-5,
                                atol=1e-5)
 
 
