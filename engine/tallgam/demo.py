@@ -166,6 +166,9 @@ def severity_model(where: str | None = TRAIN):
                tg.categorical("region")])
 
 
+DISCRETIZE_ROWS = 5_000_000  # books of this size and over are fitted with discretize=True
+
+
 def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
              echo: Callable[[str], None] = lambda s: None) -> DemoResult:
     """Write the book; fit frequency (and a banded challenger) and severity on 2021–2023;
@@ -182,15 +185,19 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     glob = os.path.join(book_dir, "*.parquet")
     quoted = "'" + glob.replace("'", "''") + "'"
     holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) WHERE {HOLDOUT}")
+    options = {"progress": progress}
+    if rows >= DISCRETIZE_ROWS:  # large books: passes on coded rows (docs/performance.md)
+        options["discretize"] = True
+        echo("large book: covariates coded into tables of distinct values (discretize=True)")
     echo(f"fitting the claim-frequency model on {TRAIN} (poisson, log link, exposure offset)")
-    freq = frequency_model().fit(glob, progress=progress)
+    freq = frequency_model().fit(glob, **options)
     freq.save(os.path.join(folder, "frequency.json"))
     echo(freq.summary())
     echo("fitting a banded challenger (straight lines and levels only)")
-    banded = banded_frequency_model().fit(glob, progress=progress)
+    banded = banded_frequency_model().fit(glob, **options)
     banded.save(os.path.join(folder, "frequency_banded.json"))
     echo("fitting the claim-severity model (gamma, log link, claim counts as weights)")
-    sev = severity_model().fit(glob, progress=progress)
+    sev = severity_model().fit(glob, **options)
     sev.save(os.path.join(folder, "severity.json"))
     echo(sev.summary())
     tables = []
