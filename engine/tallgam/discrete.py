@@ -152,8 +152,8 @@ class DiscreteDesign:
         self.points = int(points)
         # one grid per (column, resolution): a column in a single-input term keeps the full
         # resolution; the inputs of a surface share TABLE_ROWS table rows between them
-        self.grids: dict[tuple[str, int], ColumnGrid] = {}
-        self._grid_of: dict[tuple[str, str], tuple[str, int]] = {}
+        self.grids: dict[tuple[str, int, int], ColumnGrid] = {}
+        self._grid_of: dict[tuple[str, str], tuple[str, int, int]] = {}
         for b in design.bases:
             numeric = [c for c, kind in self._inputs(b) if kind == "numeric"]
             plan = {c: (self.points, max(EXACT_SPAN, self.points)) for c in numeric}
@@ -169,7 +169,7 @@ class DiscreteDesign:
                         for c in numeric}
             for c in numeric:
                 points, span = plan[c]
-                key = (c, points)
+                key = (c, points, span)
                 if key not in self.grids:
                     self.grids[key] = column_grid(c, profile, points, span)
                 self._grid_of[(b.label, c)] = key
