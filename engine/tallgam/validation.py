@@ -183,8 +183,16 @@ def validate(fit, data, *, against=None, batch_rows: int = 1_000_000, progress=F
             second.close()
 
 
+#: DuckDB's working memory for the hold-out tables (sorts and windows over one row per
+#: hold-out row); beyond it DuckDB spills to its temporary folder
+TABLES_MEMORY = "1GB"
+
+
 def _tables(fit, path: str, sums: dict, challenger) -> Validation:
     con = duckdb.connect()
+    if TABLES_MEMORY:
+        con.execute(f"SET memory_limit = '{TABLES_MEMORY}'")
+        con.execute("SET preserve_insertion_order = false")
     literal = "'" + path.replace("'", "''") + "'"
     con.execute(f"CREATE VIEW h AS SELECT *, expected / exposure AS rate "
                 f"FROM read_parquet({literal})")
