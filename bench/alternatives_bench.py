@@ -67,11 +67,11 @@ sys.path.insert(0, HERE)
 
 from engine_bench import (  # noqa: E402
     Meter,
+    engine_environment,
     engine_fingerprint,
     machine_info,
     proc_status,
     reset_peak_rss,
-    snapshot_engine,
     wait_idle,
     warm_page_cache,
 )
@@ -425,13 +425,7 @@ def main(argv: list[str] | None = None) -> int:
     opts = {"engine_options": dict(args.engine_option), "alpha": args.alpha,
             "solver": args.solver, "max_iter": args.max_iter}
     limit_mb = (args.memory_gib * 1024.0 if args.memory_gib else memory_total_mb())
-    env = None
-    engine = {"snapshot": None}
-    if not args.live_engine:
-        root, engine = snapshot_engine()
-        engine["snapshot"] = root
-        env = dict(os.environ, PYTHONPATH=os.pathsep.join(
-            [root] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p]))
+    env, engine = engine_environment(args.live_engine)
     sizes: dict[int, dict] = {}
     refs: dict[int, dict] = {}
     ref_cache: dict[str, dict] = {}

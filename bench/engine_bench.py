@@ -242,6 +242,31 @@ def engine_fingerprint() -> dict:
     return {"engine_sources_sha256": sources_hash(pkg), "path": pkg}
 
 
+def profile_timer(seconds: list[float]):
+    """A wrapper maker: the wrapped function's wall time is appended to ``seconds``."""
+    def wrap(inner):
+        def timed(*args, **kwargs):
+            t0 = time.perf_counter()
+            try:
+                return inner(*args, **kwargs)
+            finally:
+                seconds.append(time.perf_counter() - t0)
+        return timed
+    return wrap
+
+
+def engine_environment(live: bool) -> tuple[dict | None, dict]:
+    """(environment for the task processes, what engine they import): a snapshot of the
+    engine first on PYTHONPATH, unless ``live``."""
+    if live:
+        return None, {"snapshot": None}
+    root, engine = snapshot_engine()
+    engine["snapshot"] = root
+    env = dict(os.environ, PYTHONPATH=os.pathsep.join(
+        [root] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p]))
+    return env, engine
+
+
 def snapshot_engine() -> tuple[str, dict]:
     """Copy the tallgam package to a scratch directory, so that every task of a run
     imports the same engine even while its sources are being edited. Returns the
@@ -392,14 +417,7 @@ def task_fit(name: str, files: list[str], batch_rows: int) -> dict:
             return value
         return timed
 
-    def timed_profile(inner):
-        def timed(*args, **kwargs):
-            t0 = time.perf_counter()
-            try:
-                return inner(*args, **kwargs)
-            finally:
-                profile_s.append(time.perf_counter() - t0)
-        return timed
+    timed_profile = profile_timer(profile_s)
 
     patches = Patches()
     for owner, attr, kind in pass_hooks():
@@ -631,13 +649,7 @@ def main(argv=None) -> int:
         return 0
 
     started = dt.datetime.now()
-    env = None
-    engine = {"snapshot": None}
-    if not args.live_engine:
-        root, engine = snapshot_engine()
-        engine["snapshot"] = root
-        env = dict(os.environ, PYTHONPATH=os.pathsep.join(
-            [root] + [p for p in os.environ.get("PYTHONPATH", "").split(os.pathsep) if p]))
+    env, engine = engine_environment(args.live_engine)
     sizes = {}
     try:
         for n in args.rows:

@@ -46,6 +46,7 @@ from engine_bench import (  # noqa: E402
     models,
     pass_hooks,
     profile_hooks,
+    profile_timer,
     wait_idle,
     warm_page_cache,
     warm_up,
@@ -191,14 +192,7 @@ def profile_fit(name: str, files: list[str], batch_rows: int) -> dict:
         T.wrap_function(link_cls, meth, "family & link functions")
     profile_s = []
 
-    def timed_profile(inner):
-        def timed(*args, **kwargs):
-            t0 = time.perf_counter()
-            try:
-                return inner(*args, **kwargs)
-            finally:
-                profile_s.append(time.perf_counter() - t0)
-        return timed
+    timed_profile = profile_timer(profile_s)
 
     patches = Patches()
     for owner, attr, _kind in pass_hooks():

@@ -39,7 +39,7 @@ from . import kernels
 from .design import Design
 from .errors import DataError, SpecError
 from .profile import DataProfile
-from .state import MAX_SCALARS, SCALARS, PassState, _ordered_sum
+from .state import SCALARS, PassState, ScalarSums, _ordered_sum
 
 DEFAULT_POINTS = 200      # grid values of a binned column (discretize=True)
 MIN_POINTS = 10
@@ -72,8 +72,11 @@ class ColumnGrid:
         if self.exact:
             c = x - self.values[0]
             if c.size and (c.min() < 0 or c.max() >= len(self.values)):
-                raise DataError(f"column {self.column!r} has values outside the range its "
-                                "profile found; the data changed during the fit")
+                bad = int(np.count_nonzero((c < 0) | (c >= len(self.values))))
+                raise DataError(f"column {self.column!r} has {bad} value(s) in this batch "
+                                f"outside the range its profile found ({self.values[0]:g} to "
+                                f"{self.values[-1]:g}); the data changed during the fit: "
+                                "fit again on a stable copy")
             return c.astype(np.int32)
         out = np.empty(len(x), dtype=np.int32)
         kernels.grid_codes(np.ascontiguousarray(x, dtype=np.float64), self.mid,
@@ -339,11 +342,12 @@ class DiscreteDesign:
 
 def _no_unknown(codes: np.ndarray, column: str) -> None:
     if codes.size and codes.min() < 0:
-        raise DataError(f"column {column!r} has a level its profile did not find; the data "
-                        "changed during the fit")
+        raise DataError(f"column {column!r} has {int(np.count_nonzero(codes < 0))} row(s) in "
+                        "this batch with a level its profile did not find; the data changed "
+                        "during the fit: fit again on a stable copy")
 
 
-class DiscreteAccumulator:
+class DiscreteAccumulator(ScalarSums):
     """Per-thread cross-tables for one pass; :meth:`finish` turns them into a PassState."""
 
     def __init__(self, dd: DiscreteDesign, threads: int):
@@ -359,12 +363,6 @@ class DiscreteAccumulator:
                                     dd.tab_off, dd.tab_idx, dd.tab_val, dd.tab_width,
                                     self.cells, self.vec)
 
-    def add_scalars(self, **values: float) -> None:
-        for k, v in values.items():
-            if k in MAX_SCALARS:
-                self.scalars[k] = max(self.scalars[k], float(v))
-            else:
-                self.scalars[k] += float(v)
 
     def finish(self) -> PassState:
         dd = self.dd

@@ -138,7 +138,20 @@ class PassState:
         return d
 
 
-class Accumulator:
+class ScalarSums:
+    """The pass's scalar sums (:data:`SCALARS`), shared by every accumulator."""
+
+    scalars: dict
+
+    def add_scalars(self, **values: float) -> None:
+        for k, v in values.items():
+            if k in MAX_SCALARS:
+                self.scalars[k] = max(self.scalars[k], float(v))
+            else:
+                self.scalars[k] += float(v)
+
+
+class Accumulator(ScalarSums):
     """Per-thread accumulators for one pass; :meth:`finish` reduces them in thread order."""
 
     def __init__(self, pd: int, level_sizes: list[int], threads: int):
@@ -165,12 +178,6 @@ class Accumulator:
             kernels.accumulate_level_pair(enc.lev[:, a], enc.lev[:, b], self.level_offsets[a],
                                           self.level_offsets[b], w, out)
 
-    def add_scalars(self, **values: float) -> None:
-        for k, v in values.items():
-            if k in MAX_SCALARS:
-                self.scalars[k] = max(self.scalars[k], float(v))
-            else:
-                self.scalars[k] += float(v)
 
     def finish(self) -> PassState:
         dense = _ordered_sum(self.dense)
