@@ -46,6 +46,11 @@ class Family:
         """Keep μ inside the family's open mean space (guards PIRLS steps)."""
         return mu
 
+    def working_kernel(self, link: Link):
+        """A numba function computing a pass's working model in one loop with ``link``
+        (signature of :func:`tallgam.kernels.poisson_log_working`), or None: numpy path."""
+        return None
+
     def valid_mu(self, mu: np.ndarray) -> np.ndarray:
         """Which means lie in the family's mean space (a PIRLS step leaving it is halved)."""
         return np.isfinite(mu)
@@ -134,6 +139,11 @@ class Poisson(Family):
 
     def valid_mu(self, mu):
         return np.isfinite(mu) & (mu > 0)
+
+    def working_kernel(self, link):
+        from . import kernels
+
+        return kernels.poisson_log_working if link.name == "log" else None
 
 
 class Binomial(Family):

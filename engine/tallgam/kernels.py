@@ -269,7 +269,7 @@ def grid_codes(x, mid, lo, scale, lut, out):
 # (Poisson with the log link). Same definitions as tallgam.families / tallgam.links; the
 # generic numpy path is the reference (tests/test_discrete.py compares the two).
 
-_LGAMMA_TABLE = np.array([math.lgamma(k + 1.0) for k in range(256)])
+LGAMMA_TABLE = np.array([math.lgamma(k + 1.0) for k in range(256)])
 EPS_MU = 1e-10
 
 

@@ -128,7 +128,7 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
             scratch.discard()
 
 
-FUSED = True  # Poisson with the log link runs its working model in one numba loop
+FUSED = True  # families with a working_kernel for the link run it in one numba loop
 FUSED_SUMS = ("invalid_rows", "weight", "resid_ss", "deviance", "pearson", "response_ss",
               "centred_ss", "centred_sum", "log_weight", "loglik", "null_deviance",
               "null_weight", "null_score", "bad")
@@ -161,14 +161,14 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
         step = layout.pass_coefficients(beta - beta_prev)
     three_scales = not fam.scale_known and fam.loglik_in_pass and fam.name != "gaussian"
     scales = plan.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
-    fused = FUSED and beta is not None and fam.name == "poisson" and link.name == "log"
+    fused = fam.working_kernel(link) if FUSED and beta is not None else None
     for y, w, o, wc, block, batch_done in row_blocks(source, plan, scratch):
         m = len(y)
         w = w if w is not None else np.ones(m)
         o = o if o is not None else np.zeros(m)
         wc = wc if wc is not None else w
         extra = {}
-        if fused:  # one numba loop instead of some thirty numpy array passes
+        if fused is not None:  # one numba loop instead of some thirty numpy array passes
             fitted = np.zeros(m)
             layout.predict(block, coef, fitted)
             if beta_prev is not None:
@@ -176,8 +176,8 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
                 layout.predict(block, step, change)
                 extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
             wz, r = np.empty(m), np.empty(m)
-            sums = dict(zip(FUSED_SUMS, kernels.poisson_log_working(
-                fitted, o, y, w, plan.null_beta0, plan.y_mean, kernels._LGAMMA_TABLE, wz, r)))
+            sums = dict(zip(FUSED_SUMS, fused(
+                fitted, o, y, w, plan.null_beta0, plan.y_mean, kernels.LGAMMA_TABLE, wz, r)))
             bad = sums.pop("bad")
             if bad:
                 raise _outside_range(link, fam, int(bad), task)
