@@ -131,8 +131,8 @@ def wait_idle(limit_s: float, cores: float = 0.3) -> float:
 
 def timed_fit(model, files, batch_rows, *, threads=None, cluster=None) -> tuple[dict, object]:
     """Fit with every data pass timed at the runner (local or cluster)."""
-    from tallgam.cluster import ClusterPasses
-    from tallgam.passes import LocalPasses
+    from tallgam.passes.cluster import ClusterPasses
+    from tallgam.passes.run import LocalPasses
 
     passes: list[dict] = []
     sizes: dict = {}

@@ -288,8 +288,8 @@ def snapshot_engine() -> tuple[str, dict]:
 
 def engine_scan(files: list[str], model, batch_rows: int, threads: int | None = None) -> dict:
     """Read the model's select list exactly as a data pass does, and nothing else."""
-    from tallgam.design import batch_columns
-    from tallgam.sources import open_source
+    from tallgam.data.sources import open_source
+    from tallgam.passes.design import batch_columns
 
     model_inputs = engine_model_inputs()
     source = open_source(files, threads=threads)
@@ -375,10 +375,10 @@ def pass_hooks() -> list[tuple[object, str, str]]:
     kind "working" (a PIRLS pass, returns a PassState) or "loglik" (an extra pass some
     families take). The engine's layout moves; this finds the current seam."""
     try:
-        from tallgam.passes import LocalPasses
+        from tallgam.passes.run import LocalPasses
         return [(LocalPasses, "working", "working"), (LocalPasses, "loglik", "loglik")]
     except ImportError:
-        from tallgam import fitting
+        from tallgam.solve import pirls as fitting
         hooks = [(fitting, "_data_pass", "working")]
         if hasattr(fitting, "_loglik_pass"):
             hooks.append((fitting, "_loglik_pass", "loglik"))
@@ -387,16 +387,16 @@ def pass_hooks() -> list[tuple[object, str, str]]:
 
 def profile_hooks() -> list[tuple[object, str]]:
     """The profile queries the driver runs before the first pass."""
-    from tallgam import fitting
+    from tallgam.solve import pirls as fitting
     return [(fitting, n) for n in ("run_profile", "add_weighted_histograms",
                                    "add_value_histograms") if hasattr(fitting, n)]
 
 
 def engine_model_inputs():
     try:
-        from tallgam.inputs import model_inputs
+        from tallgam.data.inputs import model_inputs
     except ImportError:
-        from tallgam.fitting import model_inputs
+        from tallgam.solve.pirls import model_inputs
     return model_inputs
 
 

@@ -15,7 +15,7 @@ intercept-only start, constraint weights = exposure):
   the same encoded idx/val, the level terms as one-hot columns) and add
   ``X.T @ (w[:, None] * X)`` (numpy → BLAS dgemm), ``X.T @ (w r)`` and ``X.T @ w_c``;
   the time is building X + the products.
-* ``discrete``: the engine's discretized layout (``tallgam.discrete.DiscreteDesign``,
+* ``discrete``: the engine's discretized layout (``tallgam.passes.binned.DiscreteDesign``,
   the ``discretize=`` option of fit), through the same pass interface
   (``read`` / ``accumulator`` / ``add`` / ``finish``); the time is add + finish, its
   set-up and the coding of the rows are reported apart. Binned continuous columns make it
@@ -64,9 +64,9 @@ class Prepared:
     """The rows every contender works on (one or more batches, already read)."""
 
     rows: int
-    design: object                      # tallgam.design.Design
-    profile: object                     # tallgam.profile.DataProfile
-    batches: list[dict]                 # raw batch columns (tallgam.design.batch_columns)
+    design: object                      # tallgam.passes.design.Design
+    profile: object                     # tallgam.data.profile.DataProfile
+    batches: list[dict]                 # raw batch columns (tallgam.passes.design.batch_columns)
     weights: list[tuple[np.ndarray, np.ndarray, np.ndarray]]  # per batch: (w, r, wc)
     blocks: list[tuple[object, np.ndarray, np.ndarray, np.ndarray]]  # (Encoded, w, r, wc)
     encode_seconds: float
@@ -114,10 +114,10 @@ def prepare(rows: int, seed: int, batch_rows: int) -> Prepared:
     import tallgam as tg  # noqa: F401
     from make_book import book_table
     from reference import reference_model
-    from tallgam.design import Design, batch_columns
-    from tallgam.inputs import WC, O, Y, model_inputs
-    from tallgam.profile import run_profile
-    from tallgam.sources import open_source
+    from tallgam.data.inputs import WC, O, Y, model_inputs
+    from tallgam.data.profile import run_profile
+    from tallgam.data.sources import open_source
+    from tallgam.passes.design import Design, batch_columns
     from tallgam.terms import InterceptBasis
 
     model = reference_model()
@@ -161,7 +161,7 @@ def kernel_flops_per_row(q: int, m: int) -> int:
 
 def run_kernel(prep: Prepared) -> Output:
     """tallgam's accumulator over the pre-encoded blocks, as a data pass calls it."""
-    from tallgam.state import Accumulator
+    from tallgam.passes.state import Accumulator
 
     d = prep.design
     t0 = time.perf_counter()
@@ -179,8 +179,8 @@ def run_kernel(prep: Prepared) -> Output:
 
 def run_kernel_accumulate_only(prep: Prepared) -> float:
     """Seconds of ``kernels.accumulate`` alone over the blocks (no level pairs, no finish)."""
-    from tallgam import kernels
-    from tallgam.state import Accumulator
+    from tallgam.passes import kernels
+    from tallgam.passes.state import Accumulator
 
     acc = Accumulator(prep.design.pd, prep.level_sizes, prep.threads)
     t0 = time.perf_counter()
@@ -236,7 +236,7 @@ def make_run_blas(chunk_rows: int) -> Callable[[Prepared], Output]:
 
 def discrete_available() -> str | None:
     try:
-        from tallgam.discrete import DiscreteDesign  # noqa: F401
+        from tallgam.passes.binned import DiscreteDesign  # noqa: F401
     except ImportError as exc:
         return f"tallgam.discrete not importable ({exc})"
     return None
@@ -244,7 +244,7 @@ def discrete_available() -> str | None:
 
 def make_run_discrete(points: int | None) -> Callable[[Prepared], Output]:
     def run_discrete(prep: Prepared) -> Output:
-        from tallgam.discrete import DEFAULT_POINTS, DiscreteDesign
+        from tallgam.passes.binned import DEFAULT_POINTS, DiscreteDesign
 
         t0 = time.perf_counter()
         layout = DiscreteDesign(prep.design, prep.profile, points or DEFAULT_POINTS)

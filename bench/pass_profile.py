@@ -55,7 +55,7 @@ from engine_bench import (  # noqa: E402
 
 def passes_module():
     try:
-        from tallgam import passes
+        from tallgam.passes import run as passes
     except ImportError:
         return None
     return passes
@@ -64,9 +64,9 @@ def passes_module():
 def input_names() -> tuple[str, str]:
     """The batch aliases of the response and the offset."""
     try:
-        from tallgam.inputs import O, Y
+        from tallgam.data.inputs import O, Y
     except ImportError:
-        from tallgam.fitting import O, Y
+        from tallgam.solve.pirls import O, Y
     return Y, O
 
 STEPS = [  # (label, parent) in display order
@@ -149,11 +149,13 @@ class Timers:
 
 def profile_fit(name: str, files: list[str], batch_rows: int) -> dict:
     """One fit with every step of its data passes timed."""
-    from tallgam import basis, fitting, kernels
-    from tallgam.design import Design
-    from tallgam.sources import Source
-    from tallgam.state import Accumulator
+    from tallgam.data.sources import Source
+    from tallgam.passes import kernels
+    from tallgam.passes.design import Design
+    from tallgam.passes.state import Accumulator
+    from tallgam.solve import pirls as fitting
     from tallgam.terms import CategoricalBasis, SplineBasis
+    from tallgam.terms import bsplines as basis
 
     model = models()[name]
     T = Timers()
@@ -235,9 +237,9 @@ def best_of(fn, repeats: int = 3) -> float:
 
 
 def one_batch(files: list[str], batch_rows: int, name: str):
-    from tallgam.design import Design, batch_columns
-    from tallgam.profile import run_profile
-    from tallgam.sources import open_source
+    from tallgam.data.profile import run_profile
+    from tallgam.data.sources import open_source
+    from tallgam.passes.design import Design, batch_columns
     from tallgam.terms import InterceptBasis
 
     model = models()[name]
@@ -254,11 +256,11 @@ def micro(files: list[str], batch_rows: int) -> dict:
     """Measurements on the first batch that bear on what to change."""
     import numba
 
-    from tallgam import basis as bs
-    from tallgam import kernels
-    from tallgam.profile import Field, run_profile
-    from tallgam.state import Accumulator
+    from tallgam.data.profile import Field, run_profile
+    from tallgam.passes import kernels
+    from tallgam.passes.state import Accumulator
     from tallgam.terms import SplineBasis
+    from tallgam.terms import bsplines as bs
 
     out: dict = {}
     source, inputs, design, cols = one_batch(files, batch_rows, "poisson")
@@ -450,7 +452,7 @@ def micro(files: list[str], batch_rows: int) -> dict:
         lambda: run_profile(source, no_hist, inputs.rules, None), repeats=1)
     # leaner aggregate queries over the same columns, for comparison (not what the
     # engine needs exactly: no NULL / non-finite counts, approximate quantiles)
-    from tallgam.sources import quote
+    from tallgam.data.sources import quote
 
     num = [c for c in cols if not c.startswith("__") and c not in inputs.level_names]
     plain = ", ".join(f"min({quote(c)}), max({quote(c)}), avg({quote(c)}), "
@@ -528,7 +530,7 @@ def _fused_encoder():
     """A numba prototype: B-spline non-zeros written straight into the (n × q) arrays."""
     import numba
 
-    from tallgam.basis import _basis_row, _span
+    from tallgam.terms.bsplines import _basis_row, _span
 
     @numba.njit(parallel=True, cache=False)
     def fill(t, x, col0, slot, idx, val):

@@ -137,7 +137,8 @@ def warm_up() -> None:
 
 
 def task_fit(path: str, levels: int, keep_dense: bool, batch_rows: int) -> dict:
-    from tallgam import dense, fitting
+    from tallgam.solve import constraints as dense
+    from tallgam.solve import pirls as fitting
 
     warm_up()
     if keep_dense:

@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from scipy import integrate
 from scipy.interpolate import BSpline
 
-from tallgam import basis as bs
+from tallgam.terms import bsplines as bs
 
 KNOT_SETS = {
     "uniform": bs.clamped_knots(np.linspace(0.0, 10.0, 9)[1:-1], 0.0, 10.0),

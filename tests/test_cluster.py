@@ -17,9 +17,9 @@ import pyarrow.parquet as pq
 import pytest
 
 import tallgam as tg
-from tallgam import cluster as tgc
+from tallgam.data.sources import open_source
+from tallgam.passes import cluster as tgc
 from tallgam.progress import Event
-from tallgam.sources import open_source
 
 pytestmark = pytest.mark.filterwarnings("ignore::tallgam.TallgamWarning")
 

@@ -20,7 +20,7 @@ from sklearn import metrics
 
 import tallgam as tg
 from tallgam.errors import SpecError
-from tallgam.links import LINKS
+from tallgam.families.links import LINKS
 
 N = 2000
 TWEEDIE_POWERS = (1.05, 1.2, 1.5, 1.8, 1.95)

@@ -8,7 +8,7 @@ import pandas as pd
 import pytest
 
 import tallgam as tg
-from tallgam import passes
+from tallgam.passes import run as passes
 
 
 def book(n: int = 20_000, seed: int = 4) -> pd.DataFrame:

@@ -23,10 +23,12 @@ import pandas as pd
 import pytest
 
 import tallgam as tg
-from tallgam import dense, kernels, modelfile
-from tallgam import smoothing as sm
-from tallgam.covariance import Covariance, encode_array
-from tallgam.design import Encoded
+from tallgam.outputs import modelfile
+from tallgam.passes import kernels
+from tallgam.passes.design import Encoded
+from tallgam.solve import constraints as dense
+from tallgam.solve import smoothing as sm
+from tallgam.solve.covariance import Covariance, encode_array
 
 # ---------------------------------------------------------------------------------------
 # the eliminated problem against the full one (reference: the full p × p problem)

@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from tallgam import smoothing as sm
+from tallgam.solve import smoothing as sm
 
 
 def second_difference(k: int) -> np.ndarray:

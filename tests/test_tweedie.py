@@ -1,4 +1,4 @@
-"""Tests for tallgam.tweedie.tweedie_logpdf (Tweedie compound Poisson–gamma, 1 < p < 2)."""
+"""Tests for the Tweedie log-density (compound Poisson–gamma, 1 < p < 2)."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from tallgam.tweedie import tweedie_logpdf
+from tallgam.families.tweedie_density import tweedie_logpdf
 
 # (mu, phi, p): light and heavy point masses, p near both ends, a multimodal density
 # (p = 1.1, small phi: peaks at multiples of the gamma jump size) and a singular one

@@ -13,8 +13,8 @@ import pandas as pd
 import pytest
 
 import tallgam as tg
-from tallgam.tables import references, relativity_rows
-from tallgam.validation import validate
+from tallgam.outputs.tables import references, relativity_rows
+from tallgam.outputs.validation import validate
 
 pytestmark = pytest.mark.filterwarnings("ignore::tallgam.TallgamWarning")
 
@@ -183,7 +183,7 @@ def test_report_opens_in_a_headless_browser(fitted, tmp_path):
     it decodes (the page marks itself data-images="ok:N" once all images have loaded)."""
     fit, simple, hold = fitted
     path = tmp_path / "report.html"
-    from tallgam.report import CAUTION, write_report
+    from tallgam.outputs.report import CAUTION, write_report
 
     write_report(fit, path, data=hold, against=simple)
     html = path.read_text()

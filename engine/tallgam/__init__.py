@@ -5,7 +5,8 @@ penalized normal equations; smoothing parameters and coefficients come from a sm
 dense stage. See ``DEVELOPERS.md`` for the architecture and ``docs/`` for the guides.
 """
 
-from .errors import (
+from tallgam.data.sources import sql
+from tallgam.errors import (
     ColumnNotFound,
     ConvergenceWarning,
     DataError,
@@ -15,15 +16,13 @@ from .errors import (
     TallgamError,
     TallgamWarning,
 )
-from .families import get_family
-from .links import get_link
-from .model import Model
-from .modelfile import load
-from .result import FitResult
-from .sources import sql
-from .terms import adjacency, categorical, cyclic, linear, random_effect, spline, surface
-
-__version__ = "0.1.0"
+from tallgam.families import get_family
+from tallgam.families.links import get_link
+from tallgam.model import Model
+from tallgam.outputs.modelfile import load
+from tallgam.outputs.result import FitResult
+from tallgam.terms import adjacency, categorical, cyclic, linear, random_effect, spline, surface
+from tallgam.version import __version__
 
 __all__ = [
     "ColumnNotFound",

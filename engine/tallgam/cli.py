@@ -13,8 +13,7 @@ import os
 import sys
 import warnings
 
-from . import __version__
-from .errors import (
+from tallgam.errors import (
     ConvergenceWarning,
     DataError,
     FitError,
@@ -22,6 +21,7 @@ from .errors import (
     SpecError,
     TallgamError,
 )
+from tallgam.version import __version__
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_DATA, EXIT_NOT_CONVERGED, EXIT_MODEL_FILE = 0, 1, 2, 3, 4, 5
 
@@ -32,7 +32,7 @@ def _err(msg: str) -> None:
 
 def _progress(args):
     if getattr(args, "log_json", False):
-        from .progress import JsonLines
+        from tallgam.progress import JsonLines
 
         return JsonLines(sys.stderr)
     if getattr(args, "quiet", False):
@@ -46,7 +46,7 @@ def _show_warnings(caught) -> None:
 
 
 def cmd_fit(args) -> int:
-    from .spec import load_spec
+    from tallgam.spec import load_spec
 
     spec = load_spec(args.spec)
     data = args.data or spec.data
@@ -66,7 +66,7 @@ def cmd_fit(args) -> int:
 
 
 def cmd_show(args) -> int:
-    from .modelfile import load
+    from tallgam.outputs.modelfile import load
 
     fit = load(args.model)
     print(fit.summary())
@@ -86,7 +86,7 @@ def cmd_show(args) -> int:
 
 
 def cmd_score(args) -> int:
-    from .modelfile import load
+    from tallgam.outputs.modelfile import load
 
     fit = load(args.model)
     keep = [k for k in (args.keep or "").split(",") if k]
@@ -100,7 +100,7 @@ def cmd_score(args) -> int:
 
 
 def cmd_sql(args) -> int:
-    from .modelfile import load
+    from tallgam.outputs.modelfile import load
 
     fit = load(args.model)
     print(fit.to_sql(output=args.output, with_offset=not args.no_offset))
@@ -108,7 +108,7 @@ def cmd_sql(args) -> int:
 
 
 def cmd_tables(args) -> int:
-    from .modelfile import load
+    from tallgam.outputs.modelfile import load
 
     fit = load(args.model)
     reference = {}
@@ -128,7 +128,7 @@ def cmd_tables(args) -> int:
 
 
 def cmd_validate(args) -> int:
-    from .modelfile import load
+    from tallgam.outputs.modelfile import load
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
@@ -151,8 +151,8 @@ def cmd_validate(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from .modelfile import load
-    from .report import write_report
+    from tallgam.outputs.modelfile import load
+    from tallgam.outputs.report import write_report
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
@@ -163,8 +163,8 @@ def cmd_report(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from .demo import run_demo
-    from .report import CAUTION
+    from tallgam.demo import run_demo
+    from tallgam.outputs.report import CAUTION
 
     def echo(text: str) -> None:
         print(text, flush=True)

@@ -224,8 +224,7 @@ def _reports(folder, freq, banded, sev, holdout, glob, progress, echo) -> list[s
              "(pip install 'tallgam[plot]')")
         return []
     import tallgam as tg
-
-    from .report import write_report
+    from tallgam.outputs.report import write_report
 
     quoted = "'" + glob.replace("'", "''") + "'"
     sev_holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) "

@@ -2,7 +2,7 @@
 
 A :class:`Model` is a plain, immutable description; :meth:`Model.fit` hands it with the
 data to the iteration driver (:mod:`tallgam.fitting`) and returns a
-:class:`~tallgam.result.FitResult`.
+:class:`~tallgam.outputs.result.FitResult`.
 """
 
 from __future__ import annotations
@@ -10,10 +10,10 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from .errors import SpecError
-from .families import Family, family_from_dict, resolve
-from .links import Link
-from .terms import TermSpec, spec_from_dict
+from tallgam.errors import SpecError
+from tallgam.families import Family, family_from_dict, resolve
+from tallgam.families.links import Link
+from tallgam.terms import TermSpec, spec_from_dict
 
 CRITERIA = ("reml", "gcv", "ubre", "fixed")
 MISSING = ("error", "drop")
@@ -105,7 +105,7 @@ class Model:
     def fit(self, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
             progress=False, cluster=None, discretize: bool | int = False,
             scratch: str | bool | None = None):
-        """Fit the model to ``data`` (see :func:`tallgam.sources.open_source`).
+        """Fit the model to ``data`` (see :func:`tallgam.data.sources.open_source`).
 
         ``batch_rows`` bounds the rows held in memory at once; ``threads`` the cores used
         (default: all; on a cluster, the threads of each task, default 1); ``progress`` is
@@ -123,7 +123,7 @@ class Model:
         later passes read instead of the data (None: the system's temporary folder; False:
         read the data every pass); removed when the fit ends.
         """
-        from .fitting import fit_model
+        from tallgam.solve.pirls import fit_model
 
         return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress,
                          cluster=cluster, discretize=discretize, scratch=scratch)

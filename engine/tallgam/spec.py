@@ -29,9 +29,9 @@ import os
 import sys
 from dataclasses import dataclass, field, fields
 
-from .errors import SpecError, nearest
-from .model import Model
-from .terms import SPECS
+from tallgam.errors import SpecError, nearest
+from tallgam.model import Model
+from tallgam.terms import SPECS
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -146,7 +146,7 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
     model_args = {k: v for k, v in raw.items() if k in MODEL_KEYS}
     fam = model_args.get("family")
     if isinstance(fam, dict):
-        from .families import get_family
+        from tallgam.families import get_family
 
         fam = dict(fam)
         if "name" not in fam:

@@ -40,7 +40,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import linalg
 
-from .errors import FitError
+from tallgam.errors import FitError
 
 RHO_BOUND = 30.0  # |log relative λ| limit: e^30 ≈ 1e13 is "a straight line" in practice
 

@@ -25,9 +25,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from . import basis as bs
-from .errors import DataError, SpecError, TallgamWarning
-from .profile import DataProfile, Field
+from tallgam.data.profile import DataProfile, Field
+from tallgam.errors import DataError, SpecError, TallgamWarning
+from tallgam.terms import bsplines as bs
 
 KNOT_CHOICES = (None, "quantile", "uniform")
 
@@ -105,7 +105,7 @@ class SplineSpec(TermSpec):
         if self.per is not None and self.per == self.column:
             raise SpecError(f"{where}: per= must name another column")
         if self.shape is not None:
-            from .shape import SHAPES
+            from tallgam.solve.shapes import SHAPES
 
             if self.shape not in SHAPES:
                 raise SpecError(f"{where}: shape must be one of {', '.join(SHAPES)}, "
@@ -455,7 +455,7 @@ def _check_smoothing(where: str, smoothing) -> None:
 
 
 def _q(name: str) -> str:
-    from .sources import quote
+    from tallgam.data.sources import quote
 
     return quote(name)
 

@@ -173,7 +173,7 @@ def _profile_table(fit) -> str:
 def html_report(fit, validation=None, *, title: str | None = None) -> str:
     """One self-contained HTML page: summary, every term's figure and table, the data
     profile, hold-out validation (if given) and the cautions. Images are embedded."""
-    from . import plots
+    from tallgam.outputs import plots
 
     log_link = fit.model.link.name == "log"
     rel = fit.relativities()
@@ -243,7 +243,7 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
 def write_report(fit, path, *, data=None, against=None, title: str | None = None,
                  progress=False) -> str:
     """Validate on ``data`` (if given) and write the HTML report atomically; returns path."""
-    from .modelfile import atomic_write_text
+    from tallgam.outputs.modelfile import atomic_write_text
 
     validation = fit.validate(data, against=against, progress=progress) if data is not None \
         else None

@@ -15,9 +15,9 @@ from __future__ import annotations
 import numpy as np
 from scipy.interpolate import BSpline, PPoly
 
-from .errors import SpecError
-from .sources import quote
-from .terms import (
+from tallgam.data.sources import quote
+from tallgam.errors import SpecError
+from tallgam.terms import (
     CyclicBasis,
     InterceptBasis,
     LevelBasis,

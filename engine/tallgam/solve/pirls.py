@@ -20,18 +20,24 @@ from dataclasses import dataclass, field
 import numba
 import numpy as np
 
-from .dense import Constraints
-from .design import Design
-from .errors import ConvergenceWarning, DataError, FitError, SpecError, TallgamWarning
-from .inputs import WC, check_profile, complete_rows_condition, model_inputs, resolved_expressions
-from .model import Model
-from .passes import LOGLIK_STEP, LocalPasses, PassPlan
-from .profile import DataProfile, add_value_histograms, run_profile
-from .progress import Event, make_callback
-from .smoothing import RHO_BOUND, Solution, select, solve
-from .sources import Source, open_source
-from .state import PassState
-from .terms import Basis, InterceptBasis
+from tallgam.data.inputs import (
+    WC,
+    check_profile,
+    complete_rows_condition,
+    model_inputs,
+    resolved_expressions,
+)
+from tallgam.data.profile import DataProfile, add_value_histograms, run_profile
+from tallgam.data.sources import Source, open_source
+from tallgam.errors import ConvergenceWarning, DataError, FitError, SpecError, TallgamWarning
+from tallgam.model import Model
+from tallgam.passes.design import Design
+from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
+from tallgam.passes.state import PassState
+from tallgam.progress import Event, make_callback
+from tallgam.solve.constraints import Constraints
+from tallgam.solve.smoothing import RHO_BOUND, Solution, select, solve
+from tallgam.terms import Basis, InterceptBasis
 
 
 @dataclass
@@ -76,7 +82,7 @@ class FitState:
 def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
               progress=False, cluster=None, discretize: bool | int = False,
               scratch: str | bool | None = None):
-    from .result import FitResult
+    from tallgam.outputs.result import FitResult
 
     if int(batch_rows) < 1:
         raise DataError(f"batch_rows must be a positive integer, got {batch_rows!r}")
@@ -94,7 +100,7 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             if cluster is not None:  # imported only here: the local path never loads dask
-                from .cluster import ClusterPasses
+                from tallgam.passes.cluster import ClusterPasses
 
                 runner = ClusterPasses.open(cluster, data, source, callback, threads=threads)
             else:
@@ -121,7 +127,7 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
 
 def _grid_points(discretize) -> int | None:
     """discretize= as grid values per binned column (None: not discretized)."""
-    from .discrete import DEFAULT_POINTS, MIN_POINTS
+    from tallgam.passes.binned import DEFAULT_POINTS, MIN_POINTS
 
     if discretize is None or discretize is False:
         return None
@@ -134,10 +140,10 @@ def _grid_points(discretize) -> int | None:
 
 
 def _scratch_policy(scratch):
-    """scratch= as a :class:`~tallgam.scratch.ScratchPolicy` (None: no scratch copy)."""
+    """scratch= as a :class:`~tallgam.data.scratch.ScratchPolicy` (None: no scratch copy)."""
     import os
 
-    from .scratch import ScratchPolicy
+    from tallgam.data.scratch import ScratchPolicy
 
     if scratch is False:
         return None
@@ -212,7 +218,7 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
     design = Design(bases)
     discrete = None
     if points is not None:
-        from .discrete import DiscreteDesign
+        from tallgam.passes.binned import DiscreteDesign
 
         discrete = DiscreteDesign(design, profile, points)
     run = _Run(model, fam, runner, inputs, design, profile, batch_rows, callback, discrete)
@@ -224,7 +230,7 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
 
 class _Run:
     """The PIRLS iterations of one fit (state between data passes). ``runner`` carries
-    out the passes: :class:`~tallgam.passes.LocalPasses` here, or a cluster runner."""
+    out the passes: :class:`~tallgam.passes.run.LocalPasses` here, or a cluster runner."""
 
     def __init__(self, model, fam, runner, inputs, design, profile, batch_rows, callback,
                  discrete=None):
@@ -451,7 +457,7 @@ def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
 
 
 def _rho_of(lam, problem, constraints) -> np.ndarray:
-    from .smoothing import _relative_scale
+    from tallgam.solve.smoothing import _relative_scale
 
     base = _relative_scale(problem)
     return np.clip(np.log(np.maximum(lam, 1e-300) / base), -RHO_BOUND, RHO_BOUND)

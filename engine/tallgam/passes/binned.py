@@ -35,11 +35,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import kernels
-from .design import Design
-from .errors import DataError, SpecError
-from .profile import DataProfile
-from .state import SCALARS, PassState, ScalarSums, _ordered_sum
+from tallgam.data.profile import DataProfile
+from tallgam.errors import DataError, SpecError
+from tallgam.passes import kernels
+from tallgam.passes.design import Design
+from tallgam.passes.state import SCALARS, PassState, ScalarSums, _ordered_sum
 
 DEFAULT_POINTS = 200      # grid values of a binned column (discretize=True)
 MIN_POINTS = 10
@@ -142,9 +142,9 @@ class Factor:
 
 
 class DiscreteDesign:
-    """A :class:`~tallgam.design.Design` with every term coded into a table.
+    """A :class:`~tallgam.passes.design.Design` with every term coded into a table.
 
-    Same interface as :class:`~tallgam.design.Design` for a data pass
+    Same interface as :class:`~tallgam.passes.design.Design` for a data pass
     (:meth:`read`, :meth:`pass_coefficients`, :meth:`predict`, :meth:`accumulator`)."""
 
     def __init__(self, design: Design, profile: DataProfile, points: int = DEFAULT_POINTS):

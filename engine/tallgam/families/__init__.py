@@ -11,8 +11,8 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from .errors import SpecError, nearest
-from .links import Link, get_link
+from tallgam.errors import SpecError, nearest
+from tallgam.families.links import Link, get_link
 
 _EPS = 1e-10
 
@@ -48,7 +48,7 @@ class Family:
 
     def working_kernel(self, link: Link):
         """A numba function computing a pass's working model in one loop with ``link``
-        (signature of :func:`tallgam.kernels.poisson_log_working`), or None: numpy path."""
+        (signature of :func:`tallgam.passes.kernels.poisson_log_working`), or None: numpy path."""
         return None
 
     def valid_mu(self, mu: np.ndarray) -> np.ndarray:
@@ -141,7 +141,7 @@ class Poisson(Family):
         return np.isfinite(mu) & (mu > 0)
 
     def working_kernel(self, link):
-        from . import kernels
+        from tallgam.passes import kernels
 
         return kernels.poisson_log_working if link.name == "log" else None
 
@@ -274,7 +274,7 @@ class Tweedie(Family):
                       - y * np.power(mu, 1 - p) / (1 - p) + np.power(mu, 2 - p) / (2 - p))
 
     def loglik(self, y, mu, w, scale):
-        from .tweedie import tweedie_logpdf
+        from tallgam.families.tweedie_density import tweedie_logpdf
 
         return float(np.sum(tweedie_logpdf(y, mu, scale / w, self.power)))
 

@@ -2,8 +2,8 @@
 
 The data are cut into *partitions* on the client: one per file, or, for a single Parquet
 file, runs of whole row groups. A pass submits one task per partition; the task opens its
-partition with DuckDB on the worker, runs :func:`~tallgam.passes.working_pass` (a black box)
-and returns the partial :class:`~tallgam.state.PassState`. The client merges the states in
+partition with DuckDB on the worker, runs :func:`~tallgam.passes.run.working_pass` (a black box)
+and returns the partial :class:`~tallgam.passes.state.PassState`. The client merges the states in
 partition order, so the sum, and therefore the fit, does not depend on which worker ran
 which partition, nor on the order in which they finished. The profile pass and the dense
 stage stay on the client.
@@ -27,9 +27,9 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from .errors import DataError, SpecError, TallgamError, TallgamWarning
-from .progress import Event
-from .sources import Source, _expand_paths, _file_kind, quote
+from tallgam.data.sources import Source, _expand_paths, _file_kind, quote
+from tallgam.errors import DataError, SpecError, TallgamError, TallgamWarning
+from tallgam.progress import Event
 
 #: a single Parquet file is split at row-group boundaries into parts of at least this many
 #: rows (so a task is never dominated by its fixed cost)
@@ -238,8 +238,8 @@ def _value(x):
 
 
 def working_task(part: Partition, plan, threads: int | None):
-    """One partition's :class:`~tallgam.state.PassState` (runs on a worker)."""
-    from .passes import working_pass
+    """One partition's :class:`~tallgam.passes.state.PassState` (runs on a worker)."""
+    from tallgam.passes.run import working_pass
 
     with _task_threads(threads) as n:
         source = open_partition(part, n)
@@ -253,7 +253,7 @@ def working_task(part: Partition, plan, threads: int | None):
 
 def loglik_task(part: Partition, plan, scale: float, threads: int | None):
     """One partition's log-likelihood sum and row count (runs on a worker)."""
-    from .passes import loglik_pass
+    from tallgam.passes.run import loglik_pass
 
     with _task_threads(threads) as n:
         source = open_partition(part, n)
@@ -279,8 +279,8 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
 
     The part is written under a temporary name and renamed when complete, so a task run
     twice (its worker died) or killed half-way never leaves a partial part under the final
-    name. Returns the part's :class:`~tallgam.scoring.ScoreReport`."""
-    from .scoring import ABORT_MARKER, PART_NAME, Scorer, write_scores
+    name. Returns the part's :class:`~tallgam.outputs.scoring.ScoreReport`."""
+    from tallgam.outputs.scoring import ABORT_MARKER, PART_NAME, Scorer, write_scores
 
     marker = os.path.join(folder, ABORT_MARKER)
 
@@ -316,7 +316,7 @@ def check_worker(paths: Sequence[str], folders: Sequence[str] = ()) -> dict:
 
     import duckdb
 
-    from . import __version__
+    from tallgam.version import __version__
 
     return {
         "host": socket.gethostname(),
@@ -366,7 +366,7 @@ class ClusterSession:
 
         import duckdb
 
-        from . import __version__
+        from tallgam.version import __version__
 
         try:
             seen = self.client.run(check_worker, list(paths), list(folders))
@@ -447,7 +447,7 @@ def _slug(task: str) -> str:
 
 class ClusterPasses:
     """Runs the data passes of a fit on a Dask cluster (the interface of
-    :class:`~tallgam.passes.LocalPasses`): one task per partition, states merged in
+    :class:`~tallgam.passes.run.LocalPasses`): one task per partition, states merged in
     partition order on the client."""
 
     def __init__(self, session: ClusterSession, parts: list[Partition], callback=None,

@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
-from .errors import ColumnNotFound, DataError
-from .model import Model
-from .profile import DataProfile, Field, Rule
-from .sources import Source, quote
+from tallgam.data.profile import DataProfile, Field, Rule
+from tallgam.data.sources import Source, quote
+from tallgam.errors import ColumnNotFound, DataError
+from tallgam.model import Model
 
 Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
 
@@ -50,7 +50,7 @@ def column_or_expression(source: Source, text: str, role: str) -> str:
     try:
         source.query(f"SELECT {text} FROM tallgam_source LIMIT 0").fetchall()
     except DataError as exc:
-        from .errors import nearest
+        from tallgam.errors import nearest
 
         raise ColumnNotFound(
             f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"

@@ -20,8 +20,8 @@ import base64
 
 import numpy as np
 
-from . import kernels
-from .errors import SpecError
+from tallgam.errors import SpecError
+from tallgam.passes import kernels
 
 
 class Covariance:

@@ -14,8 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 import pyarrow as pa
 
-from . import kernels
-from .terms import Basis
+from tallgam.passes import kernels
+from tallgam.terms import Basis
 
 CHUNK_ROWS = 65_536
 
@@ -85,7 +85,7 @@ class Design:
             part = {k: (v[start:stop] if isinstance(v, np.ndarray) else v) for k, v in cols.items()}
             yield slice(start, stop), self._encode_block(part, codes, start, stop)
 
-    # the interface a data pass uses (shared with tallgam.discrete.DiscreteDesign)
+    # the interface a data pass uses (shared with tallgam.passes.binned.DiscreteDesign)
     def read(self, cols: dict) -> Iterator[tuple[slice, Encoded]]:
         """A batch's rows in the blocks the kernels take."""
         return self.blocks(cols)
@@ -99,7 +99,7 @@ class Design:
         kernels.linear_predictor(enc.idx, enc.val, enc.lev, coef[0], coef[1], out)
 
     def accumulator(self, threads: int):
-        from .state import Accumulator
+        from tallgam.passes.state import Accumulator
 
         return Accumulator(self.pd, [b.n_raw for b in self.levels], threads)
 

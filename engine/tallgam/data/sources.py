@@ -18,7 +18,7 @@ from pathlib import Path
 import duckdb
 import pyarrow as pa
 
-from .errors import ColumnNotFound, DataError, nearest
+from tallgam.errors import ColumnNotFound, DataError, nearest
 
 SOURCE_NAME = "tallgam_source"
 _PARQUET = (".parquet", ".pq", ".parq")

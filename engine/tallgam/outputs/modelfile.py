@@ -13,7 +13,7 @@ Layout (``schema_version`` 2)::
      "profile": {...}, "history": [...], "notes": [...], "provenance": {...}}
 
 ARRAY is {"dtype": "float64", "shape": [...], "base64": ...}, the little-endian bytes
-(see :class:`tallgam.covariance.Covariance`): compact for covariances with many thousand
+(see :class:`tallgam.solve.covariance.Covariance`): compact for covariances with many thousand
 entries, and exact. A file is written at the oldest version that holds it: a plain
 covariance of at most :data:`LIST_COLUMNS` columns as version 1 (the covariance a p × p list
 of lists, as earlier releases wrote and read it), anything else as version 2. Other floats
@@ -31,8 +31,8 @@ import tempfile
 
 import numpy as np
 
-from .covariance import Covariance
-from .errors import ModelFileError, TallgamError
+from tallgam.errors import ModelFileError, TallgamError
+from tallgam.solve.covariance import Covariance
 
 FORMAT = "tallgam-model"
 SCHEMA_VERSION = 2
@@ -110,10 +110,10 @@ def load(path):
 
 
 def from_dict(data: dict, where: str = "the model file"):
-    from .design import Design
-    from .model import Model
-    from .result import FitResult
-    from .terms import basis_from_dict
+    from tallgam.model import Model
+    from tallgam.outputs.result import FitResult
+    from tallgam.passes.design import Design
+    from tallgam.terms import basis_from_dict
 
     if not isinstance(data, dict) or data.get("format") != FORMAT:
         raise ModelFileError(f"{where} is not a tallgam model file (no format {FORMAT!r})")

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .sources import Source
+from tallgam.data.sources import Source
 
 HIST_BUCKETS = 10_000  # grid steps from minimum to maximum in the value histograms
 MAX_LISTED_VALUES = 200  # numeric columns with at most this many values keep them listed

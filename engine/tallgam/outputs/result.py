@@ -5,7 +5,7 @@ is small whatever the number of rows, and it round-trips exactly through the JSO
 file (:mod:`tallgam.modelfile`). Coefficients and covariance are kept in *raw*
 coordinates (one per basis column, base levels at zero) so prediction is a plain sparse
 product with the same kernels as fitting. The covariance is a
-:class:`~tallgam.covariance.Covariance`: a dense matrix, or for a fit with a large
+:class:`~tallgam.solve.covariance.Covariance`: a dense matrix, or for a fit with a large
 eliminated random effect a structured one that never holds an L × L block.
 """
 
@@ -15,12 +15,12 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
-from .covariance import Covariance
-from .design import Design
-from .errors import SpecError
-from .model import Model
-from .sources import open_source
-from .terms import Basis, InterceptBasis, LevelBasis, LinearBasis
+from tallgam.data.sources import open_source
+from tallgam.errors import SpecError
+from tallgam.model import Model
+from tallgam.passes.design import Design
+from tallgam.solve.covariance import Covariance
+from tallgam.terms import Basis, InterceptBasis, LevelBasis, LinearBasis
 
 
 class FitResult:
@@ -61,7 +61,7 @@ class FitResult:
     # ------------------------------------------------------------------ construction
     @classmethod
     def from_state(cls, fs) -> FitResult:
-        from . import __version__
+        from tallgam.version import __version__
 
         sol, cons, design = fs.solution, fs.constraints, fs.design
         cov_raw = cons.covariance(sol, fs.scale)
@@ -170,7 +170,7 @@ class FitResult:
         else:
             hits = [i for i, b in enumerate(self.bases) if name in b.inputs]
             if len(hits) != 1:
-                from .errors import nearest
+                from tallgam.errors import nearest
 
                 raise SpecError(f"no single term {name!r}{nearest(name, labels)}; terms are "
                                 f"{', '.join(labels)}")
@@ -223,7 +223,7 @@ class FitResult:
         (delta method on the response scale). Spline columns outside the training range
         are held at the boundary, with a warning that gives the counts.
         """
-        from .scoring import OUTPUTS, Scorer
+        from tallgam.outputs.scoring import OUTPUTS, Scorer
 
         if output not in OUTPUTS:
             raise SpecError(f"output must be one of {', '.join(OUTPUTS)}, got {output!r}")
@@ -252,10 +252,10 @@ class FitResult:
         ``output_path`` becomes a directory of Parquet part files, which appears only when
         every part succeeded (see docs/distributed.md)."""
         if cluster is not None:
-            from .scoring import score_to_directory
+            from tallgam.outputs.scoring import score_to_directory
 
             return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
-        from .scoring import score_to_parquet
+        from tallgam.outputs.scoring import score_to_parquet
 
         return score_to_parquet(self, data, output_path, **kwargs)
 
@@ -269,7 +269,7 @@ class FitResult:
         ``upper`` on the link scale (centred as in the fit), and for the log link
         ``relativity`` = exp(estimate) with its bounds.
         """
-        from .terms import term_matrix
+        from tallgam.terms import term_matrix
 
         b, sl = self.term(term)
         ranges = {k.split(":", 1)[1]: (v["min"], v["max"])
@@ -299,7 +299,7 @@ class FitResult:
 
         ``reference`` overrides the reference value of numeric columns (default: the
         exposure-weighted median of the training data)."""
-        from .tables import relativity_tables
+        from tallgam.outputs.tables import relativity_tables
 
         return relativity_tables(self, reference=reference, level=level)
 
@@ -307,13 +307,13 @@ class FitResult:
         """Hold-out statistics on ``data``: deviance, Gini, lift, actual versus expected by
         rating factor; with ``against`` (another fit) the double lift. Streams through
         DuckDB with bounded memory (see :mod:`tallgam.validation`)."""
-        from .validation import validate
+        from tallgam.outputs.validation import validate
 
         return validate(self, data, against=against, batch_rows=batch_rows, progress=progress)
 
     # ------------------------------------------------------------------ output
     def summary(self) -> str:
-        from .report import summary_text
+        from tallgam.outputs.report import summary_text
 
         return summary_text(self)
 
@@ -325,13 +325,13 @@ class FitResult:
 
     def to_sql(self, output: str = "response", *, with_offset: bool = True) -> str:
         """One DuckDB SQL expression reproducing ``predict`` (see :mod:`tallgam.sqlexport`)."""
-        from .sqlexport import to_sql
+        from tallgam.outputs.sqlexport import to_sql
 
         return to_sql(self, output=output, with_offset=with_offset)
 
     def save(self, path) -> None:
         """Write the model file (JSON) atomically: a temporary name, then a rename."""
-        from .modelfile import save
+        from tallgam.outputs.modelfile import save
 
         save(self, path)
 

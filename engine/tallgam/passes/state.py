@@ -20,7 +20,7 @@ from dataclasses import dataclass, field, fields
 
 import numpy as np
 
-from . import kernels
+from tallgam.passes import kernels
 
 SCALARS = (
     "rows",           # number of rows

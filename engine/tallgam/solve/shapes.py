@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.interpolate import BSpline
 
-from .smoothing import Solution, WorkingProblem
+from tallgam.solve.smoothing import Solution, WorkingProblem
 
 SHAPES = ("increasing", "decreasing", "convex", "concave")
 MAX_ROUNDS = 200

@@ -30,9 +30,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import DataError
-from .inputs import W, Y, model_inputs
-from .sources import open_source, quote
+from tallgam.data.inputs import W, Y, model_inputs
+from tallgam.data.sources import open_source, quote
+from tallgam.errors import DataError
 
 BANDS = 10
 LORENZ_POINTS = 201
@@ -99,8 +99,8 @@ def _score_to_scratch(fit, source, path, challenger, challenger_source, batch_ro
                       progress) -> dict:
     """Stream the hold-out into ``path``: actual, expected(s), exposure, weight, factors.
     Returns the streamed sums (deviance, totals)."""
-    from .progress import Event, make_callback
-    from .scoring import Scorer
+    from tallgam.outputs.scoring import Scorer
+    from tallgam.progress import Event, make_callback
 
     callback = make_callback(progress)
     fam = fit.model.family

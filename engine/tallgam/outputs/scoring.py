@@ -17,11 +17,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from . import kernels
-from .design import Design, batch_columns
-from .errors import DataError, SpecError, TallgamWarning
-from .inputs import O, model_inputs
-from .sources import Source, quote
+from tallgam.data.inputs import O, model_inputs
+from tallgam.data.sources import Source, quote
+from tallgam.errors import DataError, SpecError, TallgamWarning
+from tallgam.passes import kernels
+from tallgam.passes.design import Design, batch_columns
 
 OUTPUTS = ("response", "link", "terms")
 UNSEEN = ("error", "base")
@@ -174,8 +174,8 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     import os
     import tempfile
 
-    from .progress import Event, make_callback
-    from .sources import open_source
+    from tallgam.data.sources import open_source
+    from tallgam.progress import Event, make_callback
 
     callback = make_callback(progress)
     out = os.fspath(output_path)
@@ -274,9 +274,9 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
 
     import pyarrow.parquet as pq
 
-    from .cluster import ClusterSession, partitions_of, score_task
-    from .progress import Event, make_callback
-    from .sources import open_source
+    from tallgam.data.sources import open_source
+    from tallgam.passes.cluster import ClusterSession, partitions_of, score_task
+    from tallgam.progress import Event, make_callback
 
     callback = make_callback(progress)
     out = os.path.abspath(os.fspath(output_dir))

@@ -15,12 +15,18 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from .covariance import Covariance
-from .design import Design
-from .errors import FitError
-from .smoothing import EliminatedBlock, PenaltyBlock, Solution, WorkingProblem, null_eigenvalues
-from .state import PassState
-from .terms import RandomEffectBasis
+from tallgam.errors import FitError
+from tallgam.passes.design import Design
+from tallgam.passes.state import PassState
+from tallgam.solve.covariance import Covariance
+from tallgam.solve.smoothing import (
+    EliminatedBlock,
+    PenaltyBlock,
+    Solution,
+    WorkingProblem,
+    null_eigenvalues,
+)
+from tallgam.terms import RandomEffectBasis
 
 ELIMINATE_LEVELS = 200  # a random effect with at least this many levels is eliminated
 
@@ -90,7 +96,7 @@ class Constraints:
             # its penalties() would be an L × L identity: read the fixed λ from the spec
             self.fixed.append(getattr(design.bases[self.eliminated].spec, "smoothing", None))
             self.penalty_owner.append(self.eliminated)
-        from .shape import ShapeConstraints
+        from tallgam.solve.shapes import ShapeConstraints
 
         self.shapes = ShapeConstraints(self)
 

@@ -3,7 +3,7 @@
 A :class:`PassPlan` holds everything a pass needs (the model's select list, the design, the
 family and link, the current coefficients); it is a plain picklable value, so the same
 :func:`working_pass` runs here or on a cluster worker over a part of the data, and the
-resulting :class:`~tallgam.state.PassState` values are merged by addition. A
+resulting :class:`~tallgam.passes.state.PassState` values are merged by addition. A
 :class:`LocalPasses` runs passes over one source in this process.
 """
 
@@ -14,13 +14,13 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from . import kernels
-from .design import Design, batch_columns
-from .errors import FitError
-from .inputs import WC, Inputs, O, W, Y
-from .progress import Event
-from .sources import Source
-from .state import PassState
+from tallgam.data.inputs import WC, Inputs, O, W, Y
+from tallgam.data.sources import Source
+from tallgam.errors import FitError
+from tallgam.passes import kernels
+from tallgam.passes.design import Design, batch_columns
+from tallgam.passes.state import PassState
+from tallgam.progress import Event
 
 LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
 
@@ -41,7 +41,7 @@ class PassPlan:
     y_mean: float
     scale_est: float
     batch_rows: int
-    discrete: object = None   # a tallgam.discrete.DiscreteDesign: run on coded rows
+    discrete: object = None   # a tallgam.passes.binned.DiscreteDesign: run on coded rows
     more_passes: bool = True  # False when this pass is known to be the only one
 
     @property
@@ -53,7 +53,7 @@ class PassPlan:
 class LocalPasses:
     """Runs passes over one source in this process (the default runner).
 
-    With ``cache`` (a :class:`~tallgam.scratch.ScratchPolicy`), a discretized fit writes
+    With ``cache`` (a :class:`~tallgam.data.scratch.ScratchPolicy`), a discretized fit writes
     the coded rows to a scratch folder during its first pass and reads them from there in
     later passes instead of the source; :meth:`close` removes the folder."""
 
@@ -68,7 +68,7 @@ class LocalPasses:
             return None
         if not plan.more_passes and (self.scratch is None or not self.scratch.complete):
             return None   # a single pass: a scratch copy would only cost
-        from .scratch import prepare
+        from tallgam.data.scratch import prepare
 
         self.scratch = prepare(self.scratch, self.policy, plan, rows)
         return self.scratch

@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
-from .errors import SpecError, nearest
+from tallgam.errors import SpecError, nearest
 
 _TINY = 1e-300
 

@@ -22,8 +22,8 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
-from .errors import SpecError
-from .terms import (
+from tallgam.errors import SpecError
+from tallgam.terms import (
     Basis,
     CategoricalBasis,
     InterceptBasis,
@@ -49,7 +49,7 @@ class RelativityTables:
         import pyarrow.csv as pacsv
         import pyarrow.parquet as pq
 
-        from .modelfile import atomic_write_text
+        from tallgam.outputs.modelfile import atomic_write_text
 
         os.makedirs(folder, exist_ok=True)
         paths = []
