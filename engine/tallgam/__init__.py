@@ -25,6 +25,7 @@ from tallgam.terms import adjacency, categorical, cyclic, linear, random_effect,
 from tallgam.version import __version__
 
 __all__ = [
+    "__version__",
     "ColumnNotFound",
     "ConvergenceWarning",
     "DataError",
