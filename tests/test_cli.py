@@ -62,7 +62,7 @@ def test_fit_show_score_sql(book, tmp_path):
     out = run("fit", str(folder / "frequency.toml"), "-o", str(model_path), "--quiet")
     assert model_path.exists(), out.stderr
     saved = json.loads(model_path.read_text())
-    assert saved["format"] == "tallgam-model" and saved["schema_version"] == 1
+    assert saved["format"] == "tallgam-model" and saved["schema_version"] == 3
 
     shown = run("show", str(model_path)).stdout
     for text in ("spline(age)", "categorical(region)", "6,000", "training data"):

@@ -18,6 +18,7 @@ import pytest
 
 import tallgam as tg
 from tallgam.data.sources import open_source
+from tallgam.options import Tuning
 from tallgam.passes import cluster as tgc
 from tallgam.progress import Event
 
@@ -110,26 +111,26 @@ def test_cluster_fit_equals_local_fit(book, client, make):
     assert all(e.rows == len(book[1]) for e in ends)
 
 
-def test_discretized_cluster_fit_equals_local_discretized_fit(book, client):
+def test_binned_cluster_fit_equals_local_binned_fit(book, client):
     # the coded design (tables, grids) travels in the plan; workers stream and code
     folder, _ = book
     data = str(folder / "*.parquet")
-    local = poisson_model().fit(data, batch_rows=1500, discretize=True)
-    remote = poisson_model().fit(data, batch_rows=1500, discretize=True, cluster=client)
+    local = poisson_model().fit(data, batch_rows=1500, binned=True)
+    remote = poisson_model().fit(data, batch_rows=1500, binned=True, cluster=client)
     assert_same_fit(remote, local)
-    assert any(n.startswith("discretized") for n in remote.notes)
+    assert any(n.startswith("binned passes") for n in remote.notes)
 
 
 def test_single_file_is_split_at_row_groups(tmp_path, client, monkeypatch):
     df = book_frame(seed=5, n=12000)
     path = tmp_path / "one.parquet"
     pq.write_table(pa.Table.from_pandas(df, preserve_index=False), path, row_group_size=1000)
-    monkeypatch.setattr(tgc, "PARTITION_MIN_ROWS", 2500)
     with open_source(str(path)) as source:
-        parts = tgc.partitions_of(str(path), source)
+        parts = tgc.partitions_of(str(path), source, min_rows=2500)
     assert [p.rows for p in parts] == [(0, 3000), (3000, 6000), (6000, 9000), (9000, 12000)]
     local = poisson_model().fit(str(path), batch_rows=1000)
-    remote = poisson_model().fit(str(path), batch_rows=1000, cluster=client)
+    remote = poisson_model().fit(str(path), batch_rows=1000, cluster=client,
+                                 tuning=Tuning(partition_min_rows=2500))
     assert_same_fit(remote, local)
 
 

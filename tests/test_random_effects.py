@@ -23,10 +23,10 @@ import pandas as pd
 import pytest
 
 import tallgam as tg
+from tallgam.options import Tuning
 from tallgam.outputs import modelfile
 from tallgam.passes import kernels
 from tallgam.passes.design import Encoded
-from tallgam.solve import constraints as dense
 from tallgam.solve import smoothing as sm
 from tallgam.solve.covariance import Covariance, encode_array
 
@@ -124,9 +124,8 @@ def sleepstudy() -> pd.DataFrame:
     return df.assign(Subject=df["Subject"].astype(str), Days=df["Days"].astype(float))
 
 
-def _fit_path(monkeypatch, model, data, path: str):
-    monkeypatch.setattr(dense, "ELIMINATE_LEVELS", 2 if path == "eliminated" else 0)
-    fit = model.fit(data)
+def _fit_path(model, data, path: str):
+    fit = model.fit(data, tuning=Tuning(eliminate_levels=2 if path == "eliminated" else 0))
     assert fit.covariance.structured == (path == "eliminated")
     return fit
 
@@ -136,8 +135,7 @@ SLEEP = tg.Model("Reaction", terms=[tg.linear("Days"), tg.random_effect("Subject
 
 @pytest.fixture(scope="module")
 def sleep_fits(sleepstudy):
-    with pytest.MonkeyPatch.context() as mp:
-        return {path: _fit_path(mp, SLEEP, sleepstudy, path) for path in ("dense", "eliminated")}
+    return {path: _fit_path(SLEEP, sleepstudy, path) for path in ("dense", "eliminated")}
 
 
 @pytest.mark.parametrize("path", ["dense", "eliminated"])
@@ -216,8 +214,7 @@ def moderate(request):
     """500 levels (and a second, small random effect kept dense): both paths."""
     frame = _book(15_000, 500, request.param)
     model = _model(request.param)
-    with pytest.MonkeyPatch.context() as mp:
-        fits = {path: _fit_path(mp, model, frame, path) for path in ("dense", "eliminated")}
+    fits = {path: _fit_path(model, frame, path) for path in ("dense", "eliminated")}
     return frame, fits
 
 
@@ -247,7 +244,7 @@ def test_eliminated_model_file_round_trip_is_bit_for_bit(moderate, tmp_path):
     path = tmp_path / "model.json"
     fit.save(path)
     saved = json.loads(path.read_text())
-    assert saved["schema_version"] == 2
+    assert saved["schema_version"] == 3
     assert set(saved["covariance"]["eliminated"]["cross"]) == {"dtype", "shape", "base64"}
     loaded = tg.load(path)
     sample = frame.iloc[::5]
@@ -267,14 +264,13 @@ def test_eliminated_model_file_round_trip_is_bit_for_bit(moderate, tmp_path):
         fit.covariance_raw  # noqa: B018
 
 
-def test_model_file_versions_and_damaged_arrays(moderate, tmp_path, monkeypatch):
+def test_model_file_versions_and_damaged_arrays(moderate, tmp_path):
     frame, fits = moderate
     fit = fits["dense"]
-    monkeypatch.setattr(modelfile, "LIST_COLUMNS", 100)  # a dense covariance, encoded
     path = tmp_path / "dense.json"
-    fit.save(path)
+    modelfile.save(fit, path, list_columns=100)  # a dense covariance, encoded
     data = json.loads(path.read_text())
-    assert data["schema_version"] == 2 and data["covariance"]["eliminated"] is None
+    assert data["schema_version"] == 3 and data["covariance"]["eliminated"] is None
     loaded = tg.load(path)
     np.testing.assert_array_equal(loaded.covariance_raw, fit.covariance_raw)
     # the same model as a version 1 file (covariance as a list of lists) loads the same
@@ -336,22 +332,21 @@ def test_gcv_keeps_the_full_problem():
     assert not fit.covariance.structured
 
 
-def test_collinear_columns_are_named_with_an_eliminated_term(monkeypatch):
+def test_collinear_columns_are_named_with_an_eliminated_term():
     frame = _book(4_000, 250, "gaussian").assign(a=lambda d: d["density"],
                                                    b=lambda d: 2.0 * d["density"] + 1.0)
-    monkeypatch.setattr(dense, "ELIMINATE_LEVELS", 100)
     model = tg.Model("y", terms=[tg.linear("a"), tg.linear("b"), tg.random_effect("group")])
     with pytest.raises(tg.FitError, match=r"linear\((a|b)\)"):
-        model.fit(frame)
+        model.fit(frame, tuning=Tuning(eliminate_levels=100))
 
 
 @pytest.mark.parametrize("criterion", ["reml", "fixed"])
-def test_given_smoothing_of_an_eliminated_term(monkeypatch, criterion):
+def test_given_smoothing_of_an_eliminated_term(criterion):
     frame = _book(6_000, 300, "poisson")
     model = tg.Model("y", family="poisson", exposure="exposure", criterion=criterion,
                      terms=[tg.spline("age", size=8, smoothing=50.0 if criterion == "fixed"
                                       else None),
                             tg.random_effect("group", smoothing=3.0)])
-    fits = {path: _fit_path(monkeypatch, model, frame, path) for path in ("dense", "eliminated")}
+    fits = {path: _fit_path(model, frame, path) for path in ("dense", "eliminated")}
     assert fits["eliminated"].smoothing["random_effect(group)"] == 3.0
     _assert_same_fit(fits["dense"], fits["eliminated"], 1e-9)

@@ -326,7 +326,7 @@ def test_selection_removes_a_term_without_effect_and_keeps_real_ones():
     # part always remains (EDF ≥ 1)
     df = orthogonal_design(11)
     terms = ("x", "u", "w")
-    sel = tg.Model("y", terms=[tg.spline(c, select=True) for c in terms]).fit(df)
+    sel = tg.Model("y", terms=[tg.spline(c, removable=True) for c in terms]).fit(df)
     plain = tg.Model("y", terms=[tg.spline(c) for c in terms]).fit(df)
     assert sel.converged and plain.converged
     # measured: u 2.5e-7 with selection, 1.0000002 without
@@ -351,8 +351,8 @@ def test_selection_shrinks_noise_terms_below_the_unpenalized_floor():
         x, u = rng.uniform(0.0, 1.0, n), rng.uniform(0.0, 1.0, n)
         df = pd.DataFrame({"x": x, "u": u,
                            "y": np.sin(2 * np.pi * x) + rng.normal(0.0, 0.5, n)})
-        fit = tg.Model("y", terms=[tg.spline("x", size=8, select=True),
-                                   tg.spline("u", size=8, select=True)]).fit(df)
+        fit = tg.Model("y", terms=[tg.spline("x", size=8, removable=True),
+                                   tg.spline("u", size=8, removable=True)]).fit(df)
         below += fit.edf["spline(u)"] < 1.0
         assert fit.edf["spline(x)"] > 4
     assert below >= 14, below

@@ -57,9 +57,10 @@ CASES = {
             'column = "age"\nper = "fuel"\nsize = 6', ""),
     "multiplier": ([tg.spline("x", multiplier="z", size=6)],
                    'kind = "spline"\ncolumn = "x"\nmultiplier = "z"\nsize = 6', ""),
-    "select": ([tg.spline("x", select=True), tg.surface("lon", "lat", size=4, select=True)],
-               'kind = "spline"\ncolumn = "x"\nselect = true\n\n[[term]]\nkind = "surface"\n'
-               'columns = ["lon", "lat"]\nsize = 4\nselect = true', ""),
+    "removable": ([tg.spline("x", removable=True),
+                   tg.surface("lon", "lat", size=4, removable=True)],
+                  'kind = "spline"\ncolumn = "x"\nremovable = true\n\n[[term]]\n'
+                  'kind = "surface"\ncolumns = ["lon", "lat"]\nsize = 4\nremovable = true', ""),
     "random_effect": ([tg.random_effect("grp")],
                       'kind = "random_effect"\ncolumn = "grp"', ""),
     "adjacency": ([tg.adjacency("region", neighbours="nb.json")],
@@ -166,7 +167,7 @@ def test_spec_neighbour_path_is_relative_to_the_spec(frame, tmp_path, monkeypatc
     assert fit.converged
 
 
-def test_selection_with_fixed_criterion_is_refused():
+def test_removable_with_fixed_criterion_is_refused():
     # the selection penalty's smoothing is chosen by the criterion, so "fixed" cannot work
-    with pytest.raises(tg.SpecError, match="select=True"):
-        tg.Model("y", criterion="fixed", terms=[tg.spline("x", smoothing=1.0, select=True)])
+    with pytest.raises(tg.SpecError, match="removable=True"):
+        tg.Model("y", criterion="fixed", terms=[tg.spline("x", smoothing=1.0, removable=True)])

@@ -3,48 +3,57 @@
 Data stream from Parquet (or anything DuckDB reads) in batches; numba kernels build the
 penalized normal equations; smoothing parameters and coefficients come from a small
 dense stage. See ``DEVELOPERS.md`` for the architecture and ``docs/`` for the guides.
+
+The public names below load on first use, so ``import tallgam`` is quick.
 """
 
-from tallgam.data.sources import sql
-from tallgam.errors import (
-    ColumnNotFound,
-    ConvergenceWarning,
-    DataError,
-    FitError,
-    ModelFileError,
-    SpecError,
-    TallgamError,
-    TallgamWarning,
-)
-from tallgam.families import get_family
-from tallgam.families.links import get_link
-from tallgam.model import Model
-from tallgam.outputs.modelfile import load
-from tallgam.outputs.result import FitResult
-from tallgam.terms import adjacency, categorical, cyclic, linear, random_effect, spline, surface
+from __future__ import annotations
+
+import importlib
+
 from tallgam.version import __version__
 
-__all__ = [
-    "__version__",
-    "ColumnNotFound",
-    "ConvergenceWarning",
-    "DataError",
-    "FitError",
-    "FitResult",
-    "Model",
-    "ModelFileError",
-    "SpecError",
-    "TallgamError",
-    "TallgamWarning",
-    "adjacency",
-    "categorical",
-    "cyclic",
-    "get_family",
-    "get_link",
-    "linear",
-    "load",
-    "random_effect",
-    "spline",
-    "sql",
-    "surface",
-]
+_PUBLIC = {
+    "Model": "tallgam.model",
+    "load": "tallgam.model",
+    "FitResult": "tallgam.outputs.result",
+    "RunOptions": "tallgam.options",
+    "Tuning": "tallgam.options",
+    "sql": "tallgam.data.sources",
+    "spline": "tallgam.terms",
+    "cyclic": "tallgam.terms",
+    "surface": "tallgam.terms",
+    "linear": "tallgam.terms",
+    "categorical": "tallgam.terms",
+    "random_effect": "tallgam.terms",
+    "adjacency": "tallgam.terms",
+    "get_family": "tallgam.families",
+    "get_link": "tallgam.families.links",
+    "ColumnNotFound": "tallgam.errors",
+    "ConvergenceWarning": "tallgam.errors",
+    "DataError": "tallgam.errors",
+    "FitError": "tallgam.errors",
+    "ModelFileError": "tallgam.errors",
+    "SpecError": "tallgam.errors",
+    "TallgamError": "tallgam.errors",
+    "TallgamWarning": "tallgam.errors",
+}
+_SUBPACKAGES = ("terms", "families", "data", "passes", "solve", "outputs", "options",
+                "errors")
+
+__all__ = ["__version__", *sorted(_PUBLIC), *_SUBPACKAGES]
+
+
+def __getattr__(name: str):
+    if name in _PUBLIC:
+        value = getattr(importlib.import_module(_PUBLIC[name]), name)
+    elif name in _SUBPACKAGES:
+        value = importlib.import_module(f"tallgam.{name}")
+    else:
+        raise AttributeError(f"module 'tallgam' has no attribute {name!r}")
+    globals()[name] = value
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(__all__))

@@ -53,10 +53,10 @@ def cmd_fit(args) -> int:
     if not data:
         raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
-    discretize = spec.discretize if args.discretize is None else args.discretize
+    binned = spec.binned if args.binned is None else args.binned
     fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
                          threads=args.threads or spec.threads, progress=_progress(args),
-                         cluster=args.cluster, discretize=discretize,
+                         cluster=args.cluster, binned=binned,
                          scratch=args.scratch if args.scratch is not None else spec.scratch)
     fit.save(out)
     if not args.quiet:
@@ -66,19 +66,17 @@ def cmd_fit(args) -> int:
 
 
 def cmd_show(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
 
     fit = load(args.model)
     print(fit.summary())
     prof = fit.profile
-    print(f"\n  training data: {prof.get('rows', 0):,} rows")
-    for key, col in prof.get("columns", {}).items():
-        name = key.split(":", 1)[-1]
-        if col.get("kind") == "numeric":
-            print(f"  - {name}: {col.get('min')} to {col.get('max')} (mean {col.get('mean'):.6g})")
+    print(f"\n  training data: {prof.rows:,} rows")
+    for name, col in prof.columns.items():
+        if col.kind == "numeric":
+            print(f"  - {name}: {col.min:g} to {col.max:g} (mean {col.mean:.6g})")
         else:
-            levels = col.get("levels", {})
-            print(f"  - {name}: {len(levels)} levels")
+            print(f"  - {name}: {col.distinct} levels")
     prov = fit.provenance
     if prov:
         print(f"\n  fitted {prov.get('fitted_at', '?')} by tallgam {prov.get('tallgam_version')}")
@@ -86,7 +84,7 @@ def cmd_show(args) -> int:
 
 
 def cmd_score(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
 
     fit = load(args.model)
     keep = [k for k in (args.keep or "").split(",") if k]
@@ -100,7 +98,7 @@ def cmd_score(args) -> int:
 
 
 def cmd_sql(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
 
     fit = load(args.model)
     print(fit.to_sql(output=args.output, with_offset=not args.no_offset))
@@ -108,7 +106,7 @@ def cmd_sql(args) -> int:
 
 
 def cmd_tables(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
 
     fit = load(args.model)
     reference = {}
@@ -128,7 +126,7 @@ def cmd_tables(args) -> int:
 
 
 def cmd_validate(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
@@ -151,7 +149,7 @@ def cmd_validate(args) -> int:
 
 
 def cmd_report(args) -> int:
-    from tallgam.outputs.modelfile import load
+    from tallgam.model import load
     from tallgam.outputs.report import write_report
 
     fit = load(args.model)
@@ -203,13 +201,13 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--batch-rows", type=int, default=None)
     f.add_argument("--threads", type=int, default=None,
                    help="cores to use (with --cluster: threads per task, default 1)")
-    f.add_argument("--discretize", nargs="?", type=int, const=True, default=None,
+    f.add_argument("--binned", nargs="?", type=int, const=True, default=None,
                    metavar="POINTS",
-                   help="code covariates into tables of distinct values: exact for whole "
-                        "numbers, other columns rounded to POINTS grid values (default 200); "
-                        "several times faster per data pass")
+                   help="binned passes: code covariates into tables of distinct values, "
+                        "exact for whole numbers, other columns rounded to POINTS grid values "
+                        "(default 200); several times faster per data pass")
     f.add_argument("--scratch", metavar="DIR", default=None,
-                   help="with --discretize: folder for the scratch copy of the coded rows "
+                   help="with --binned: folder for the scratch copy of the coded rows "
                         "(default: the system's temporary folder)")
     f.add_argument("--cluster", metavar="ADDRESS", default=None,
                    help="run the data passes on the Dask cluster whose scheduler is at "

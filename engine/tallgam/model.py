@@ -1,8 +1,8 @@
 """The model specification: response, family and link, terms, offsets and the data filter.
 
 A :class:`Model` is a plain, immutable description; :meth:`Model.fit` hands it with the
-data to the iteration driver (:mod:`tallgam.fitting`) and returns a
-:class:`~tallgam.outputs.result.FitResult`.
+data to the iteration driver (:mod:`tallgam.solve.pirls`) and returns a
+:class:`~tallgam.outputs.result.FitResult`; :func:`load` reads a fitted one back.
 """
 
 from __future__ import annotations
@@ -10,10 +10,13 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from tallgam.errors import SpecError
+from tallgam.errors import ModelFileError, SpecError, TallgamError
 from tallgam.families import Family, family_from_dict, resolve
 from tallgam.families.links import Link
-from tallgam.terms import TermSpec, spec_from_dict
+from tallgam.options import DEFAULT_BATCH_ROWS, RunOptions, Tuning
+from tallgam.outputs import modelfile
+from tallgam.outputs.result import FitResult
+from tallgam.terms.base import TermSpec, spec_from_dict
 
 CRITERIA = ("reml", "gcv", "ubre", "fixed")
 MISSING = ("error", "drop")
@@ -73,7 +76,7 @@ class Model:
                             f"got {self.criterion!r}")
         if self.missing not in MISSING:
             raise SpecError(f"missing must be one of {', '.join(MISSING)}, got {self.missing!r}")
-        if self.exposure is not None and lnk.name != "log":
+        if self.exposure is not None and not lnk.multiplicative:
             raise SpecError(f"exposure needs the log link (the offset is ln(exposure)); the "
                             f"model uses {lnk.name!r}. Use weights, or an explicit offset.")
         if self.criterion == "ubre" and not fam.scale_known:
@@ -90,43 +93,48 @@ class Model:
         if both:
             raise SpecError(f"column(s) {', '.join(sorted(both))} used both as numeric and as "
                             "levels; derive a copy with SQL for one of the uses")
-        level_terms = {t.column for t in self.terms if t.kind in ("categorical",)}
         for t in self.terms:
-            per = getattr(t, "per", None)
-            if per and per not in level_terms:
-                raise SpecError(f"{t.label} needs the level means too: add "
-                                f"tg.categorical({per!r}) to the terms")
-        if self.criterion == "fixed" and any(getattr(t, "select", False) for t in self.terms):
-            raise SpecError("select=True adds a penalty whose smoothing the criterion chooses; "
-                            "use criterion='reml' (a term's own smoothing= stays fixed)")
+            t.check_with(self.terms, self.criterion)
         if not (self.max_iterations >= 1):
             raise SpecError("max_iterations must be at least 1")
 
-    def fit(self, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-            progress=False, cluster=None, discretize: bool | int = False,
-            scratch: str | bool | None = None):
-        """Fit the model to ``data`` (see :func:`tallgam.data.sources.open_source`).
+    def fit(self, data, *, batch_rows: int = DEFAULT_BATCH_ROWS, threads: int | None = None,
+            progress=False, cluster=None, binned: bool | int = False,
+            scratch: str | bool | None = None, tuning: Tuning | None = None) -> FitResult:
+        """Fit the model to ``data`` and return the :class:`~tallgam.FitResult`.
 
-        ``batch_rows`` bounds the rows held in memory at once; ``threads`` the cores used
-        (default: all; on a cluster, the threads of each task, default 1); ``progress`` is
-        False, True (a bar on a terminal) or a callable receiving
-        :class:`tallgam.progress.Event` objects. ``cluster``: a ``distributed.Client``, a
-        Dask scheduler address (``"tcp://host:8786"``) or a Dask cluster object runs the
-        data passes on that cluster (``data`` must then be files every worker can read;
-        see docs/distributed.md); the result equals the local fit up to rounding.
-
-        ``discretize``: True (or a number of grid values per column, default 200) runs the
-        data passes on tables of distinct design rows (see :mod:`tallgam.discrete` and
-        docs/performance.md): exact for whole-number columns of up to 1024 values, other
-        numeric columns rounded to the nearest grid value; several times faster per pass.
-        ``scratch`` (discretized fits): a folder for a scratch copy of the coded rows that
-        later passes read instead of the data (None: the system's temporary folder; False:
-        read the data every pass); removed when the fit ends.
+        Parameters
+        ----------
+        data : path, glob, list of files, directory, ``tg.sql(...)``, DuckDB relation,
+            Arrow table or reader, pandas or polars DataFrame (see
+            :func:`tallgam.data.sources.open_source`).
+        batch_rows : int, default 1,000,000
+            Rows held in memory at once.
+        threads : int, optional
+            Cores used (default: all; on a cluster, the threads of each task, default 1).
+        progress : bool or callable, default False
+            True draws a bar on a terminal; a callable receives
+            :class:`tallgam.progress.Event` objects.
+        cluster : distributed.Client, scheduler address or Dask cluster, optional
+            Runs the data passes on that cluster (``data`` must be files every worker can
+            read; see docs/distributed.md); the result equals the local fit up to rounding.
+        binned : bool or int, default False
+            Binned data passes (see :mod:`tallgam.passes.binned` and
+            docs/performance.md): every term coded into a table of its distinct design
+            rows; exact for whole-number columns, other numeric columns rounded to the
+            nearest of ``binned`` grid values (True: 200); several times faster per pass.
+        scratch : str, bool or None
+            Binned fits: a folder for a scratch copy of the coded rows that later passes
+            read instead of the data (None: the system's temporary folder; False: read the
+            data every pass); removed when the fit ends.
+        tuning : tallgam.options.Tuning, optional
+            Engine constants (tests and benchmarks).
         """
         from tallgam.solve.pirls import fit_model
 
-        return fit_model(self, data, batch_rows=batch_rows, threads=threads, progress=progress,
-                         cluster=cluster, discretize=discretize, scratch=scratch)
+        options = RunOptions(batch_rows=batch_rows, threads=threads, progress=progress,
+                             cluster=cluster, binned=binned, scratch=scratch, tuning=tuning)
+        return FitResult.from_state(fit_model(self, data, options))
 
     def to_dict(self) -> dict:
         return {
@@ -151,3 +159,13 @@ class Model:
             "family"]
         d["terms"] = [spec_from_dict(t) for t in d.get("terms", [])]
         return cls(**d)
+
+
+def load(path) -> FitResult:
+    """A fitted model from its model file (see :mod:`tallgam.outputs.modelfile`)."""
+    parts = modelfile.read(path)
+    try:
+        model = Model.from_dict(parts.pop("model"))
+    except (TallgamError, KeyError, TypeError, ValueError) as exc:
+        raise ModelFileError(f"{path} is inconsistent: its model section: {exc}") from None
+    return FitResult(model, **parts)

@@ -8,7 +8,7 @@ Example::
     exposure = "exposure"
     where = "policy_year >= 2022"
     batch_rows = 1_000_000
-    discretize = true                    # code covariates into tables (faster passes)
+    binned = true                        # binned passes: covariates coded into tables
 
     [[term]]
     kind = "spline"
@@ -27,11 +27,11 @@ from __future__ import annotations
 
 import os
 import sys
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 
 from tallgam.errors import SpecError, nearest
 from tallgam.model import Model
-from tallgam.terms import SPECS
+from tallgam.terms.base import kinds, spec_class
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -46,12 +46,12 @@ MODEL_KEYS: dict[str, tuple] = {
 }
 RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
-    "discretize": (bool, int), "scratch": (str, bool),
+    "binned": (bool, int), "scratch": (str, bool),
 }
 TERM_TYPES: dict[str, tuple] = {
     "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
     "knots": (str, list), "penalty": (str,), "smoothing": (int, float, list),
-    "base": (str, int), "per": (str,), "multiplier": (str,), "select": (bool,),
+    "base": (str, int), "per": (str,), "multiplier": (str,), "removable": (bool,),
     "period": _NUMBER, "origin": _NUMBER, "neighbours": (str, dict), "shape": (str,),
 }
 
@@ -66,7 +66,7 @@ class RunSpec:
     threads: int | None = None
     output: str | None = None
     path: str | None = None
-    discretize: bool | int = False
+    binned: bool | int = False
     scratch: str | bool | None = None
     extra: dict = field(default_factory=dict)
 
@@ -81,39 +81,27 @@ def _check_type(where: str, key: str, value, types: tuple) -> None:
         raise SpecError(f"{where}: key {key!r} must be a {names}, got {value!r}")
 
 
-def _term_keys(kind: str) -> set[str]:
-    spec_cls = SPECS[kind]
-    return {f.name for f in fields(spec_cls)} | {"kind"}
-
-
 def parse_term(table: dict, index: int) -> object:
     where = f"[[term]] number {index + 1}"
     if not isinstance(table, dict):
         raise SpecError(f"{where} must be a table")
     kind = table.get("kind")
     if kind is None:
-        raise SpecError(f"{where} has no 'kind'; use one of {', '.join(SPECS)}")
-    if kind not in SPECS:
-        raise SpecError(f"{where}: unknown kind {kind!r}{nearest(kind, SPECS)}; use one of "
-                        f"{', '.join(SPECS)}")
-    allowed = _term_keys(kind)
+        raise SpecError(f"{where} has no 'kind'; use one of {', '.join(kinds())}")
+    spec_cls = spec_class(kind, f"{where}: ")
+    allowed = set(spec_cls.options()) | {"kind"}
     for key, value in table.items():
         if key not in allowed:
             raise SpecError(f"{where} ({kind}): unknown key {key!r}{nearest(key, allowed)}; "
                             f"valid keys are {', '.join(sorted(allowed))}")
         if key in TERM_TYPES:
             _check_type(where, key, value, TERM_TYPES[key])
-    needed = "columns" if kind == "surface" else "column"
-    if needed not in table:
-        raise SpecError(f"{where} ({kind}) needs {needed!r}")
+    for needed in spec_cls.required():
+        if needed not in table:
+            raise SpecError(f"{where} ({kind}) needs {needed!r}")
     args = {k: v for k, v in table.items() if k != "kind"}
-    for key in ("columns", "size", "smoothing"):
-        if isinstance(args.get(key), list):
-            args[key] = tuple(args[key])
-    if "base" in args:
-        args["base"] = str(args["base"])
     try:
-        return SPECS[kind](**args)
+        return spec_cls.from_dict(args)
     except TypeError as exc:
         raise SpecError(f"{where} ({kind}): {exc}") from None
 
@@ -166,7 +154,7 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
         scratch = _resolve(scratch, base)
     return RunSpec(model=model, data=data, batch_rows=int(raw.get("batch_rows", 1_000_000)),
                    threads=raw.get("threads"), output=raw.get("output"), path=path,
-                   discretize=raw.get("discretize", False), scratch=scratch)
+                   binned=raw.get("binned", False), scratch=scratch)
 
 
 def _resolve(p: str, base: str) -> str:

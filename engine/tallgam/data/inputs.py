@@ -12,7 +12,6 @@ from dataclasses import dataclass, field
 from tallgam.data.profile import DataProfile, Field, Rule
 from tallgam.data.sources import Source, quote
 from tallgam.errors import ColumnNotFound, DataError
-from tallgam.model import Model
 
 Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
 
@@ -58,7 +57,7 @@ def column_or_expression(source: Source, text: str, role: str) -> str:
     return f"({text})"
 
 
-def model_inputs(model: Model, source: Source, design_specs, for_prediction: bool = False,
+def model_inputs(model, source: Source, design_specs, for_prediction: bool = False,
                  with_offset: bool = True) -> Inputs:
     """Resolve the model's columns and expressions against ``source``."""
     columns: dict[str, str] = {}  # column -> "numeric" | "levels"
@@ -85,24 +84,24 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
     rules: list[Rule] = []
     if Y in exprs:
         select.append(f"CAST({exprs[Y]} AS DOUBLE) AS {Y}")
-        fields_.append(Field("response", exprs[Y]))
-        for cond, msg in model.family.response_rules:
+        fields_.append(Field(model.response, exprs[Y], role="response"))
+        for cond, msg in model.family.rules(model.weights is not None):
             rules.append(Rule(f"response: {msg}", "response", cond.format(y="{response}"),
                               f"response {model.response!r} has {msg}"))
     if W in exprs:
         select.append(f"CAST({exprs[W]} AS DOUBLE) AS {W}")
-        fields_.append(Field("weights", exprs[W]))
+        fields_.append(Field(model.weights, exprs[W], role="weights"))
         rules.append(Rule("weights: not positive", "weights", "{weights} <= 0",
                           f"weights {model.weights!r} has values ≤ 0"))
     parts = []
     if "__exposure" in exprs:
         parts.append(f"ln(CAST({exprs['__exposure']} AS DOUBLE))")
-        fields_.append(Field("exposure", exprs["__exposure"]))
+        fields_.append(Field(model.exposure, exprs["__exposure"], role="exposure"))
         rules.append(Rule("exposure: not positive", "exposure", "{exposure} <= 0",
                           f"exposure {model.exposure!r} has values ≤ 0"))
     if "__offset" in exprs:
         parts.append(f"CAST({exprs['__offset']} AS DOUBLE)")
-        fields_.append(Field("offset", exprs["__offset"]))
+        fields_.append(Field(model.offset, exprs["__offset"], role="offset"))
     if parts:
         select.append(f"{' + '.join(parts)} AS {O}")
     cw = None
@@ -112,14 +111,8 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
         cw = f"CAST({exprs[W]} AS DOUBLE)"
     if cw is not None and not for_prediction:
         select.append(f"{cw} AS {WC}")
-    seen: dict[str, Field] = {}
-    for spec in design_specs:
-        for f in spec.profile_fields():
-            if f.key not in seen:
-                seen[f.key] = Field(f.key, f.expr, f.kind, f.histogram)
-                fields_.append(seen[f.key])
-            else:  # a column several terms use: profile it once, with a histogram if any asks
-                seen[f.key].histogram |= f.histogram
+    for c, kind in columns.items():  # every model column once, whichever terms use it
+        fields_.append(Field(c, quote(c), kind))
     for c, kind in columns.items():
         cast = "VARCHAR" if kind == "levels" else "DOUBLE"
         select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
@@ -145,18 +138,15 @@ def complete_rows_condition(fields_: list[Field]) -> str:
     return " AND ".join(conds) if conds else "TRUE"
 
 
-def check_profile(profile: DataProfile, source: Source, model: Model) -> None:
+def check_profile(profile: DataProfile, source: Source, model) -> None:
     """DataError for empty data, NULL/NaN/inf values and rule violations (with counts)."""
     where = f" after the filter {model.where!r}" if model.where else ""
     if profile.rows == 0:
         raise DataError(f"{source.label} has no rows{where}")
     bad = []
-    for key, fp in profile.fields.items():
-        n_bad = fp.nulls + fp.nonfinite
-        if n_bad:
-            name = key.split(":", 1)[-1]
-            what = f"{fp.nulls} NULL" + (f", {fp.nonfinite} NaN/inf" if fp.nonfinite else "")
-            bad.append(f"{name!r}: {what}")
+    for name, (nulls, nonfinite) in profile.missing().items():
+        what = f"{nulls} NULL" + (f", {nonfinite} NaN/inf" if nonfinite else "")
+        bad.append(f"{name!r}: {what}")
     if bad:
         raise DataError(
             f"missing or non-finite values in {len(bad)} column(s) of {profile.rows} rows — "

@@ -42,7 +42,7 @@ def prepare(current: Scratch | None, policy: ScratchPolicy, plan, rows: int | No
     """The scratch copy a pass of ``plan`` over ``rows`` rows reads or writes: ``current``
     if it holds the same coded rows, else a new empty one (None when it would not fit the
     limit, or the row count is unknown)."""
-    dd, inputs = plan.discrete, plan.inputs
+    dd, inputs = plan.binned, plan.inputs
     key = (dd.fingerprint, tuple(inputs.select), inputs.where)
     if current is not None:
         if current.key == key and current.complete:

@@ -138,7 +138,7 @@ def _concat(parts: list[pa.RecordBatch]) -> pa.RecordBatch:
     return pa.Table.from_batches(parts).combine_chunks().to_batches()[0]
 
 
-def _expand_paths(items: Sequence[str | os.PathLike]) -> tuple[list[str], bool]:
+def expand_paths(items: Sequence[str | os.PathLike]) -> tuple[list[str], bool]:
     """Expand globs and directories into a sorted file list; True when hive-partitioned."""
     files: list[str] = []
     hive = False
@@ -165,7 +165,7 @@ def _expand_paths(items: Sequence[str | os.PathLike]) -> tuple[list[str], bool]:
     return files, hive
 
 
-def _file_kind(files: list[str]) -> str:
+def file_kind(files: list[str]) -> str:
     kinds = set()
     for f in files:
         low = f.lower()
@@ -216,8 +216,8 @@ def open_source(data, *, threads: int | None = None) -> Source:
         isinstance(data, (list, tuple)) and data and all(
             isinstance(d, (str, os.PathLike)) for d in data)):
         items = [data] if isinstance(data, (str, os.PathLike)) else list(data)
-        files, hive = _expand_paths(items)
-        kind = _file_kind(files)
+        files, hive = expand_paths(items)
+        kind = file_kind(files)
         con = _connect(threads)
         label = files[0] if len(files) == 1 else f"{len(files)} files ({files[0]}, ...)"
         try:

@@ -18,6 +18,7 @@ class Link:
     """Base class: ``link(mu) = eta``, ``inverse(eta) = mu``, ``mu_eta(eta) = dμ/dη``."""
 
     name = "link"
+    multiplicative = False  # exp of a link-scale difference is a ratio of means (log)
 
     def link(self, mu: np.ndarray) -> np.ndarray:
         raise NotImplementedError
@@ -60,6 +61,7 @@ class Identity(Link):
 
 class Log(Link):
     name = "log"
+    multiplicative = True
 
     def link(self, mu):
         return np.log(mu)

@@ -36,10 +36,10 @@ def _style(ax) -> None:
 
 
 def _value_key(table) -> str:
-    return [c for c in table.column_names if c not in _STAT_COLUMNS][0]
+    return [c for c in table.column_names if c not in STAT_COLUMNS][0]
 
 
-_STAT_COLUMNS = {"estimate", "difference", "std_error", "lower", "upper", "relativity",
+STAT_COLUMNS = {"estimate", "difference", "std_error", "lower", "upper", "relativity",
                  "relativity_lower", "relativity_upper", "training_weight"}
 
 
@@ -50,7 +50,7 @@ def effect_figure(table, label: str, *, log_link: bool):
     per-level curve draws one line per level."""
     plt = _plt()
     key = _value_key(table)
-    per = [c for c in table.column_names if c not in _STAT_COLUMNS and c != key]
+    per = [c for c in table.column_names if c not in STAT_COLUMNS and c != key]
     y, lo, hi = (("relativity", "relativity_lower", "relativity_upper") if log_link
                  else ("difference", "lower", "upper"))
     fig, (ax, bar) = plt.subplots(2, 1, figsize=(7.0, 4.6), sharex=True,
@@ -105,7 +105,7 @@ def surface_figure(table, label: str, *, log_link: bool):
     """A two-column term as a filled contour map of its relativity (or effect)."""
     plt = _plt()
     data = table.to_pydict()
-    xk, zk = [c for c in table.column_names if c not in _STAT_COLUMNS][:2]
+    xk, zk = [c for c in table.column_names if c not in STAT_COLUMNS][:2]
     x, z = np.asarray(data[xk]), np.asarray(data[zk])
     v = np.asarray(data["relativity" if log_link else "difference"])
     nx, nz = len(np.unique(x)), len(np.unique(z))

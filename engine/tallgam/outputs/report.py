@@ -1,4 +1,4 @@
-"""Human-readable output of a fit: the text summary (the HTML report grows here later)."""
+"""Human-readable output of a fit: the text summary and the self-contained HTML report."""
 
 from __future__ import annotations
 
@@ -56,8 +56,8 @@ def summary_text(fit) -> str:
                      f"  {lam_s:<22}".rstrip())
     lines.append(f"  {'all terms':<32}{fit.design.p:>8}{fit.edf['total']:>9.2f}")
     coef = fit.coefficients
-    shown = [i for i, t in enumerate(coef["term"].to_pylist())
-             if t.startswith(("linear(", "categorical(", "intercept"))]
+    unpenalized = {b.label for b in fit.bases if b.n_penalties == 0}
+    shown = [i for i, t in enumerate(coef["term"].to_pylist()) if t in unpenalized]
     if shown:
         lines += ["", f"  {'parametric coefficient':<40}{'estimate':>12}{'std. error':>12}"]
         terms = coef["term"].to_pylist()
@@ -156,14 +156,12 @@ def _img(png: bytes, alt: str) -> str:
 
 def _profile_table(fit) -> str:
     rows = []
-    for key, col in fit.profile.get("columns", {}).items():
-        name = key.split(":", 1)[-1]
-        if col.get("kind") == "numeric":
-            rows.append((name, "numeric", f"{_num(col.get('min'))} to {_num(col.get('max'))}",
-                         _num(col.get("mean")), _num(col.get("weighted_median"))))
+    for name, col in fit.profile.columns.items():
+        if col.kind == "numeric":
+            rows.append((name, "numeric", f"{_num(col.min)} to {_num(col.max)}",
+                         _num(col.mean), _num(col.weighted_median())))
         else:
-            levels = col.get("levels", {})
-            rows.append((name, "levels", f"{len(levels)} levels", "–", "–"))
+            rows.append((name, "levels", f"{col.distinct} levels", "–", "–"))
     head = "".join(f"<th>{h}</th>" for h in ("column", "kind", "range", "mean",
                                              "weighted median"))
     body = "".join("<tr>" + "".join(f"<td>{_esc(v)}</td>" for v in r) + "</tr>" for r in rows)
@@ -175,7 +173,7 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
     profile, hold-out validation (if given) and the cautions. Images are embedded."""
     from tallgam.outputs import plots
 
-    log_link = fit.model.link.name == "log"
+    log_link = fit.model.link.multiplicative
     rel = fit.relativities()
     title = title or f"{fit.model.family.name} model of {fit.model.response}"
     parts = [f"<h1>{_esc(title)}</h1>",
@@ -197,8 +195,8 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
             shown = ", ".join(f"{k} = {v}" for k, v in ref.items() if v is not None)
             if shown:
                 parts.append(f'<p class="note">reference: {_esc(shown)}</p>')
-        keys = [c for c in table.column_names if c not in plots._STAT_COLUMNS]
-        if len(keys) == 2 and label.startswith("surface("):
+        keys = [c for c in table.column_names if c not in plots.STAT_COLUMNS]
+        if len(keys) == 2 and fit.term(label)[0].drawn_as == "surface":
             fig = plots.surface_figure(table, label, log_link=log_link)
         else:
             fig = plots.effect_figure(table, label, log_link=log_link)
@@ -228,7 +226,7 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
                               f"actual versus expected by {column}"))
             parts.append(_html_table(table))
     parts.append('<h2 id="data">Training data</h2>')
-    parts.append(f"<p>{fit.profile.get('rows', 0):,} rows"
+    parts.append(f"<p>{fit.profile.rows:,} rows"
                  + (f", filter <code>{_esc(fit.model.where)}</code>" if fit.model.where else "")
                  + ".</p>")
     parts.append(_profile_table(fit))

@@ -15,12 +15,13 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
+from tallgam.data.profile import DataProfile
 from tallgam.data.sources import open_source
 from tallgam.errors import SpecError
-from tallgam.model import Model
+from tallgam.options import DEFAULT_BATCH_ROWS, RunOptions
 from tallgam.passes.design import Design
 from tallgam.solve.covariance import Covariance
-from tallgam.terms import Basis, InterceptBasis, LevelBasis, LinearBasis
+from tallgam.terms.base import Basis
 
 
 class FitResult:
@@ -39,9 +40,9 @@ class FitResult:
         ``covariance_raw`` is its p × p array when no term was eliminated.
     """
 
-    def __init__(self, model: Model, bases: list[Basis], beta: np.ndarray,
+    def __init__(self, model, bases: list[Basis], beta: np.ndarray,
                  covariance: np.ndarray | Covariance, edf: dict, smoothing: dict, statistics: dict,
-                 profile: dict, history: list[dict], notes: list[str], provenance: dict,
+                 profile: DataProfile, history: list[dict], notes: list[str], provenance: dict,
                  expressions: dict | None = None):
         self.model = model
         self.bases = bases
@@ -81,8 +82,7 @@ class FitResult:
         tss = sc["centred_ss"] - sc["centred_sum"] ** 2 / max(weight, 1e-300)
         dev, null = sc["deviance"], fs.null_deviance
         fam = fs.family or fs.model.family
-        p_scale = (0 if fam.scale_known else 1) + (1 if fam.estimates_nuisance else 0) + (
-            1 if "power_profile" in fs.extra_statistics else 0)
+        p_scale = fam.n_estimated_parameters
         statistics = {
             "rows": int(n),
             "weight": weight,
@@ -108,7 +108,7 @@ class FitResult:
                       "fitted_at": __import__("datetime").datetime.now(
                           __import__("datetime").timezone.utc).isoformat(timespec="seconds")}
         return cls(fs.model, design.bases, fs.beta, cov_raw, edf, smoothing, statistics,
-                   fs.profile.to_dict(), history, list(fs.notes), provenance, fs.expressions)
+                   fs.profile.compact(), history, list(fs.notes), provenance, fs.expressions)
 
     # ------------------------------------------------------------------ statistics
     @property
@@ -181,40 +181,50 @@ class FitResult:
     def coefficients(self) -> pa.Table:
         """One row per raw coefficient: term, name, estimate, std_error (link scale).
 
-        Linear terms are reported per unit of their column; base levels are 0 with se 0.
+        The intercept is the model's intercept as a GLM reads it (linear terms measured
+        from 0, not from their mean; see :attr:`intercept`); linear terms are reported per
+        unit of their column; base levels are 0 with se 0.
         """
         terms, names, est, se = [], [], [], []
         sd = np.sqrt(np.maximum(self.covariance.diagonal(), 0.0))
         for b, sl in zip(self.bases, self.design.slices):
-            e, s = self.coefficients_raw[sl], sd[sl]
-            if isinstance(b, LinearBasis):
-                e, s = e / b.scale, s / b.scale
-                labels = [b.spec.column]
-            elif isinstance(b, LevelBasis):
-                labels = list(b.levels)
-            elif isinstance(b, InterceptBasis):
-                labels = ["(intercept)"]
-            else:
-                labels = [f"basis {i + 1}" for i in range(b.n_raw)]
+            unit = b.coefficient_units()
+            e, s = self.coefficients_raw[sl] / unit, sd[sl] / unit
+            labels = b.coefficient_names()
             terms += [b.label] * len(labels)
             names += labels
             est += list(e)
             se += list(s)
+        first = self.design.slices[0].start
+        est[first], se[first] = self.intercept, self._intercept_se()
         return pa.table({"term": terms, "name": names, "estimate": np.array(est),
                          "std_error": np.array(se)})
 
+    def _intercept_contrast(self) -> np.ndarray:
+        a = np.zeros(self.design.p)
+        a[self.design.slices[0].start] = 1.0
+        for b, sl in zip(self.bases, self.design.slices):
+            c = b.intercept_contrast()
+            if c is not None:
+                a[sl] = c
+        return a
+
     @property
     def intercept(self) -> float:
-        """The intercept on the link scale (linear terms measured from their mean)."""
-        b = self.coefficients_raw[self.design.slices[0]][0]
-        for basis, sl in zip(self.bases, self.design.slices):
-            if isinstance(basis, LinearBasis):
-                b -= self.coefficients_raw[sl][0] * basis.centre / basis.scale
-        return float(b)
+        """The model's intercept on the link scale as a GLM reads it: the linear
+        predictor with linear terms' columns at 0, level terms at their base level and
+        smooth terms at 0 (their centred level). The base rate that pricing uses, at the
+        reference point, is :attr:`RelativityTables.base_rate` (``fit.relativities()``)."""
+        return float(self._intercept_contrast() @ self.coefficients_raw)
+
+    def _intercept_se(self) -> float:
+        return float(np.sqrt(max(self.covariance.contrast_variance(self._intercept_contrast()),
+                                 0.0)))
 
     # ------------------------------------------------------------------ prediction
     def predict(self, data, output: str = "response", *, se: bool = False,
-                with_offset: bool = True, unseen: str = "error", batch_rows: int = 1_000_000):
+                with_offset: bool = True, unseen: str = "error",
+                batch_rows: int = DEFAULT_BATCH_ROWS):
         """Predictions for every row of ``data`` (any source), in row order.
 
         ``output``: ``"response"`` (μ, including exposure/offset unless
@@ -227,6 +237,7 @@ class FitResult:
 
         if output not in OUTPUTS:
             raise SpecError(f"output must be one of {', '.join(OUTPUTS)}, got {output!r}")
+        batch_rows = RunOptions(batch_rows=batch_rows).batch_rows
         source = open_source(data)
         owned = source is not data
         try:
@@ -245,14 +256,15 @@ class FitResult:
         return values
 
     def score(self, data, output_path, *, cluster=None, **kwargs):
-        """Stream predictions of ``data`` to a Parquet file (see :mod:`tallgam.scoring`).
+        """Stream predictions of ``data`` to a Parquet file (see
+        :func:`tallgam.outputs.scoring.score_to_parquet` for the options).
 
         With ``cluster`` (a ``distributed.Client``, scheduler address or Dask cluster
         object) the partitions of ``data`` are scored on the cluster's workers and
         ``output_path`` becomes a directory of Parquet part files, which appears only when
         every part succeeded (see docs/distributed.md)."""
         if cluster is not None:
-            from tallgam.outputs.scoring import score_to_directory
+            from tallgam.passes.cluster import score_to_directory
 
             return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
         from tallgam.outputs.scoring import score_to_parquet
@@ -263,19 +275,17 @@ class FitResult:
     def effect(self, term: str, *, points: int = 200, level: float = 0.95) -> pa.Table:
         """A term's estimated effect with pointwise Bayesian bands.
 
-        Smooth and linear terms: ``points`` values across the training range (a grid of up
-        to 50 per axis for surfaces; every level for per-level curves); level terms: every
-        level. Columns: the term's input columns, ``estimate``, ``std_error``, ``lower``,
-        ``upper`` on the link scale (centred as in the fit), and for the log link
-        ``relativity`` = exp(estimate) with its bounds.
+        Smooth and linear terms: up to ``points`` values across the training range, placed
+        where the training data are (a grid of up to 50 per axis for surfaces; every level
+        for per-level curves); level terms: every level. Columns: the term's input
+        columns, ``estimate``, ``std_error``, ``lower``, ``upper`` on the link scale
+        (centred as in the fit), and for the log link ``relativity`` = exp(estimate) with
+        its bounds.
         """
-        from tallgam.terms import term_matrix
+        from tallgam.terms.base import term_matrix
 
         b, sl = self.term(term)
-        ranges = {k.split(":", 1)[1]: (v["min"], v["max"])
-                  for k, v in self.profile.get("columns", {}).items()
-                  if k.startswith("num:") and v.get("min") is not None}
-        grid = b.effect_grid(points, ranges)
+        grid = b.effect_grid(points, self.profile)
         beta = self.coefficients_raw[sl]
         if b.group == "levels":  # one indicator per row: read the levels, form no matrix
             code = b.codes({c: pa.array(v, type=pa.string()) for c, v in grid.items()})
@@ -289,13 +299,14 @@ class FitResult:
         z = stats.norm.ppf(0.5 + level / 2.0)
         cols = dict(grid)
         cols.update(estimate=est, std_error=se, lower=est - z * se, upper=est + z * se)
-        if self.model.link.name == "log":
+        if self.model.link.multiplicative:
             cols.update(relativity=np.exp(est), relativity_lower=np.exp(est - z * se),
                         relativity_upper=np.exp(est + z * se))
         return pa.table(cols)
 
     def relativities(self, *, reference: dict | None = None, level: float = 0.95):
-        """Relativity tables of every term, with the base rate (see :mod:`tallgam.tables`).
+        """Relativity tables of every term, with the base rate (see
+        :mod:`tallgam.outputs.tables`).
 
         ``reference`` overrides the reference value of numeric columns (default: the
         exposure-weighted median of the training data)."""
@@ -303,13 +314,15 @@ class FitResult:
 
         return relativity_tables(self, reference=reference, level=level)
 
-    def validate(self, data, *, against=None, batch_rows: int = 1_000_000, progress=False):
+    def validate(self, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
+                 progress=False, tuning=None):
         """Hold-out statistics on ``data``: deviance, Gini, lift, actual versus expected by
         rating factor; with ``against`` (another fit) the double lift. Streams through
-        DuckDB with bounded memory (see :mod:`tallgam.validation`)."""
+        DuckDB with bounded memory (see :mod:`tallgam.outputs.validation`)."""
         from tallgam.outputs.validation import validate
 
-        return validate(self, data, against=against, batch_rows=batch_rows, progress=progress)
+        return validate(self, data, against=against, batch_rows=batch_rows, progress=progress,
+                        tuning=tuning)
 
     # ------------------------------------------------------------------ output
     def summary(self) -> str:

@@ -20,6 +20,7 @@ import pyarrow.compute as pc
 from tallgam.data.inputs import O, model_inputs
 from tallgam.data.sources import Source, quote
 from tallgam.errors import DataError, SpecError, TallgamWarning
+from tallgam.options import RunOptions
 from tallgam.passes import kernels
 from tallgam.passes.design import Design, batch_columns
 
@@ -177,6 +178,7 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     from tallgam.data.sources import open_source
     from tallgam.progress import Event, make_callback
 
+    batch_rows = RunOptions(batch_rows=batch_rows).batch_rows
     callback = make_callback(progress)
     out = os.fspath(output_path)
     folder = os.path.dirname(os.path.abspath(out))
@@ -246,111 +248,3 @@ def write_scores(scorer: Scorer, path: str, *, se: bool, terms: bool, batch_rows
         if writer is not None:
             writer.close()
     return done
-
-
-PART_NAME = "part-{:05d}.parquet"
-_PART_PATTERN = r"part-\d{5}\.parquet"
-
-
-def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] | list[str] = (),
-                       terms: bool = False, se: bool = False, with_offset: bool = True,
-                       unseen: str = "error", batch_rows: int = 1_000_000,
-                       threads: int | None = None, progress=False) -> ScoreReport:
-    """Score ``data`` on a Dask cluster into a directory of Parquet part files.
-
-    One task per partition of ``data`` (see :mod:`tallgam.cluster`); each writes
-    ``part-NNNNN.parquet`` (NNNNN: the partition number; a partition without rows writes
-    none) into a hidden temporary directory beside ``output_dir``, under a temporary name
-    renamed when complete. The directory is renamed to ``output_dir`` only when every part
-    succeeded; on any failure the temporary directory is removed, so a failed run leaves no
-    output. Columns as in :func:`score_to_parquet`; rows in input order within each part.
-    An existing ``output_dir`` is replaced only if it holds nothing but part files.
-    """
-    import os
-    import re
-    import shutil
-    import tempfile
-    import uuid
-
-    import pyarrow.parquet as pq
-
-    from tallgam.data.sources import open_source
-    from tallgam.passes.cluster import ClusterSession, partitions_of, score_task
-    from tallgam.progress import Event, make_callback
-
-    callback = make_callback(progress)
-    out = os.path.abspath(os.fspath(output_dir))
-    folder = os.path.dirname(out)
-    if not os.path.isdir(folder):
-        raise DataError(f"the output folder {folder!r} does not exist")
-    if os.path.isfile(out):
-        raise DataError(f"{out!r} is a file; scoring on a cluster writes a directory of part "
-                        "files: give a directory name")
-    if os.path.isdir(out):
-        other = [e for e in sorted(os.listdir(out)) if not re.fullmatch(_PART_PATTERN, e)]
-        if other:
-            raise DataError(f"the output directory {out!r} exists and holds other files than "
-                            f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
-    source = open_source(data)
-    owned = source is not data
-    session = tmp = None
-    try:
-        # checks the model's columns against the data here, before any task runs
-        scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
-        parts = partitions_of(data, source)
-        session = ClusterSession(cluster)
-        tmp = tempfile.mkdtemp(prefix=".tallgam-score-", dir=folder)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)  # workers may run as another user
-        session.check(sorted({f for p in parts for f in p.files}), [tmp])
-        options = {"keep": tuple(keep), "terms": terms, "se": se, "with_offset": with_offset,
-                   "unseen": unseen, "batch_rows": int(batch_rows)}
-        callback(Event("start", "scoring"))
-        done = [0]
-
-        def advance(i, report):
-            done[0] += report.rows
-            callback(Event("advance", "scoring", rows=done[0]))
-
-        def abort():  # tasks still to start, or between batches, give up on seeing this
-            with open(os.path.join(tmp, ABORT_MARKER), "w"):
-                pass
-        reports = session.run(score_task, parts, fit, (tmp, options, threads), "score",
-                              advance, abort=abort)
-        for r in reports:
-            scorer.report.rows += r.rows
-            scorer.report.clamped.update(r.clamped)
-            scorer.report.unseen.update(r.unseen)
-        for entry in os.listdir(tmp):  # what workers that died while writing left behind
-            if not re.fullmatch(_PART_PATTERN, entry):
-                os.remove(os.path.join(tmp, entry))
-        if not os.listdir(tmp):  # no rows at all: one valid, empty part with the columns
-            names = list(keep) + ["prediction", "link"]
-            pq.write_table(pa.table({n: pa.array([], pa.float64()) for n in names}),
-                           os.path.join(tmp, PART_NAME.format(0)))
-        if os.path.isdir(out):
-            old = os.path.join(folder, f".tallgam-old-{uuid.uuid4().hex[:10]}")
-            os.rename(out, old)
-            try:
-                os.rename(tmp, out)
-            except BaseException:
-                os.rename(old, out)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out)
-        tmp = None
-        callback(Event("end", "scoring", rows=done[0]))
-    finally:
-        if tmp is not None:
-            shutil.rmtree(tmp, ignore_errors=True)
-        if session is not None:
-            session.close()
-        if owned:
-            source.close()
-    scorer.report.warn()
-    return scorer.report
-
-
-ABORT_MARKER = ".abort"

@@ -23,16 +23,7 @@ import pyarrow as pa
 from scipy import stats
 
 from tallgam.errors import SpecError
-from tallgam.terms import (
-    Basis,
-    CategoricalBasis,
-    InterceptBasis,
-    LevelBasis,
-    SplineBasis,
-    term_matrix,
-)
-
-GRID_POINTS = 101
+from tallgam.terms.base import GRID_POINTS, Basis, term_matrix
 
 
 @dataclass
@@ -84,37 +75,25 @@ def file_stem(label: str) -> str:
     return "_".join(part for part in keep.split("_") if part)
 
 
-def references(fit, overrides: dict | None = None) -> dict[str, dict]:
-    """Reference inputs per term (see the module docstring); ``overrides`` maps a column
-    to a chosen reference value."""
-    overrides = dict(overrides or {})
-    cols = fit.profile.get("columns", {})
-    out: dict[str, dict] = {}
+def base_levels(fit) -> dict[str, str]:
+    """The base level of every level column measured from one (categoricals)."""
+    out: dict[str, str] = {}
     for b in fit.bases:
-        if isinstance(b, InterceptBasis):
-            continue
-        ref: dict = {}
-        for c, kind in b.spec.input_kinds().items():
-            if c in overrides:
-                ref[c] = overrides[c]
-            elif kind == "levels":
-                ref[c] = _base_level(fit, c)
-            elif getattr(b.spec, "multiplier", None) == c:
-                ref[c] = 0.0
-            else:
-                info = cols.get(f"num:{c}", {})
-                med = info.get("weighted_median")
-                ref[c] = float(med if med is not None else info.get("mean", 0.0))
-        out[b.label] = ref
+        out.update(b.base_levels())
     return out
 
 
-def _base_level(fit, column: str):
-    """The base level a column's effects are measured from (None: the average level)."""
-    for b in fit.bases:
-        if isinstance(b, CategoricalBasis) and b.spec.column == column:
-            return b.base
-    return None
+def references(fit, overrides: dict | None = None) -> dict[str, dict]:
+    """Reference inputs per term (see the module docstring and
+    :meth:`tallgam.terms.base.Basis.reference`); ``overrides`` maps a column to a chosen
+    reference value."""
+    overrides = dict(overrides or {})
+    bases = base_levels(fit)
+    out: dict[str, dict] = {}
+    for b in fit.bases[1:]:
+        ref = b.reference(fit.profile, bases)
+        out[b.label] = {c: overrides.get(c, v) for c, v in ref.items()}
+    return out
 
 
 def _point(b: Basis, ref: dict, n: int) -> dict:
@@ -131,7 +110,7 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
     refs = refs if refs is not None else references(fit)
     b, sl = fit.term(label)
     beta = fit.coefficients_raw[sl]
-    if isinstance(b, LevelBasis):
+    if b.group == "levels":
         # one coefficient per row, measured from the base level (coefficient 0, variance 0)
         # or from zero: the variance is the level's own; no L × L matrix is formed
         cols = {k: pa.array(v, type=pa.string()) if isinstance(v, list) else v
@@ -146,10 +125,7 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
         X = term_matrix(b, grid)
         n = X.shape[0]
         est = X @ beta
-        ref = dict(refs[b.label])
-        if isinstance(b, SplineBasis) and b.levels:  # per-level curves: from the base curve
-            ref[b.spec.per] = _base_level(fit, b.spec.per)
-        point = _point(b, ref, 1)
+        point = _point(b, refs[b.label], 1)
         if any(v == [None] for v in point.values()):
             R = np.zeros_like(X)
         else:
@@ -160,35 +136,10 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
     z = stats.norm.ppf(0.5 + level / 2.0)
     out = {"estimate": est, "difference": diff, "std_error": se, "lower": diff - z * se,
            "upper": diff + z * se}
-    if fit.model.link.name == "log":
+    if fit.model.link.multiplicative:
         out.update(relativity=np.exp(diff), relativity_lower=np.exp(diff - z * se),
                    relativity_upper=np.exp(diff + z * se))
     return out
-
-
-def table_grid(fit, b: Basis) -> dict:
-    """Where to tabulate a term: listed training values of small-valued numeric columns
-    (ages, bonus levels), else an even grid; every level of level columns."""
-    cols = fit.profile.get("columns", {})
-    ranges = {k.split(":", 1)[1]: (v["min"], v["max"]) for k, v in cols.items()
-              if k.startswith("num:") and v.get("min") is not None}
-    grid = b.effect_grid(GRID_POINTS, ranges)
-    kinds = b.spec.input_kinds()
-    numeric = [c for c, k in kinds.items() if k == "numeric"
-               and c != getattr(b.spec, "multiplier", None)]
-    if len(numeric) == 1 and not isinstance(b, LevelBasis):
-        c = numeric[0]
-        listed = cols.get(f"num:{c}", {}).get("values")
-        if listed is not None and len(grid[c]):
-            values = np.asarray(listed, dtype=np.float64)
-            reps = len(grid[c]) // len(np.unique(grid[c]))
-            per = getattr(b.spec, "per", None)
-            grid = {c: np.tile(values, reps)}
-            if per:
-                grid[per] = [lev for lev in b.levels for _ in range(len(values))]
-            if getattr(b.spec, "multiplier", None):
-                grid[b.spec.multiplier] = np.ones(len(grid[c]))
-    return grid
 
 
 def relativity_tables(fit, *, reference: dict | None = None,
@@ -198,49 +149,41 @@ def relativity_tables(fit, *, reference: dict | None = None,
     refs = references(fit, reference)
     base_link = float(fit.coefficients_raw[fit.design.slices[0]][0])
     tables: dict[str, pa.Table] = {}
-    counts = _level_counts(fit)
-    for b, sl in zip(fit.bases, fit.design.slices):
-        if isinstance(b, InterceptBasis):
-            continue
-        ref = dict(refs[b.label])
-        if isinstance(b, SplineBasis) and b.levels:
-            ref[b.spec.per] = _base_level(fit, b.spec.per)
-        if not isinstance(b, LevelBasis) and all(v is not None for v in ref.values()):
+    for b, sl in zip(fit.bases[1:], fit.design.slices[1:]):
+        ref = refs[b.label]
+        if b.group != "levels" and all(v is not None for v in ref.values()):
             base_link += float((term_matrix(b, _point(b, ref, 1)) @ fit.coefficients_raw[sl])[0])
-        grid = table_grid(fit, b)
+        grid = b.effect_grid(GRID_POINTS, fit.profile)
         rows = relativity_rows(fit, b.label, grid, refs, level)
         cols = {k: (pa.array(v, type=pa.string()) if isinstance(v, list) else v)
                 for k, v in grid.items()}
-        share = _share(fit, b, grid, counts)
+        share = training_weight(fit.profile, grid)
         if share is not None:
             cols["training_weight"] = share
         cols.update(rows)
         tables[b.label] = pa.table(cols)
-    base_rate = float(np.exp(base_link)) if fit.model.link.name == "log" else None
+    base_rate = float(np.exp(base_link)) if fit.model.link.multiplicative else None
     return RelativityTables(base_rate=base_rate, base_link=base_link, references=refs,
                             tables=tables)
 
 
-def _level_counts(fit) -> dict[str, dict[str, float]]:
-    out = {}
-    for key, info in fit.profile.get("columns", {}).items():
-        if key.startswith("lev:"):
-            out[key[4:]] = info.get("levels", {})
-        elif key.startswith("num:") and "values" in info:
-            out[key[4:]] = dict(zip((repr(float(v)) for v in info["values"]),
-                                    info.get("value_weights", [])))
-    return out
-
-
-def _share(fit, b: Basis, grid: dict, counts: dict) -> np.ndarray | None:
-    """Training rows (or exposure) at each tabulated value or level, where known."""
-    kinds = b.spec.input_kinds()
-    main = [c for c, k in kinds.items() if c != getattr(b.spec, "multiplier", None)]
-    if len(main) != 1 or main[0] not in counts:
+def training_weight(profile, grid: dict) -> np.ndarray | None:
+    """Training exposure (or weight, or rows) that each tabulated row stands for, when the
+    rows vary in one input only: a level's own, or for a numeric input the values nearer
+    to that row's value than to any other row's. None for rows varying in several inputs."""
+    varying = [c for c, v in grid.items() if len(set(np.asarray(v).tolist())) > 1]
+    if len(varying) != 1 or profile is None or not profile.has_column(varying[0]):
         return None
-    c = main[0]
-    table = counts[c]
-    values = grid[c]
-    if kinds[c] == "levels":
-        return np.array([float(table.get(str(v), 0.0)) for v in values])
-    return np.array([float(table.get(repr(float(v)), 0.0)) for v in values])
+    c = varying[0]
+    prof = profile.columns[c]
+    if prof.kind == "levels":
+        return prof.mass_of(grid[c])
+    if not prof.distinct:
+        return None
+    x = np.asarray(grid[c], dtype=np.float64)
+    order = np.argsort(x, kind="stable")
+    xs = x[order]
+    nearest = np.searchsorted(0.5 * (xs[1:] + xs[:-1]), prof.values, side="right")
+    share = np.zeros(len(x))
+    share[order] = np.bincount(nearest, weights=prof.mass, minlength=len(x))
+    return share

@@ -33,6 +33,7 @@ import pyarrow.parquet as pq
 from tallgam.data.inputs import W, Y, model_inputs
 from tallgam.data.sources import open_source, quote
 from tallgam.errors import DataError
+from tallgam.options import DEFAULT_BATCH_ROWS, RunOptions, Tuning
 
 BANDS = 10
 LORENZ_POINTS = 201
@@ -160,11 +161,15 @@ def _score_to_scratch(fit, source, path, challenger, challenger_source, batch_ro
     return sums
 
 
-def validate(fit, data, *, against=None, batch_rows: int = 1_000_000, progress=False,
-             scratch_dir: str | None = None) -> Validation:
+def validate(fit, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
+             progress=False, scratch_dir: str | None = None,
+             tuning: Tuning | None = None) -> Validation:
     """Hold-out statistics of ``fit`` on ``data`` (any source); ``against`` a second fitted
     model for the double lift. Memory is bounded; a scratch Parquet file (removed at the
-    end) holds one row per hold-out row."""
+    end) holds one row per hold-out row; DuckDB's working memory for the tables is
+    ``tuning.tables_memory`` (it spills to disk beyond)."""
+    options = RunOptions(batch_rows=batch_rows, progress=progress, tuning=tuning)
+    batch_rows = options.batch_rows
     source = open_source(data)
     owned = source is not data
     # the challenger streams the same rows side by side, on a connection of its own
@@ -173,7 +178,7 @@ def validate(fit, data, *, against=None, batch_rows: int = 1_000_000, progress=F
     os.close(fd)
     try:
         sums = _score_to_scratch(fit, source, path, against, second, batch_rows, progress)
-        return _tables(fit, path, sums, against)
+        return _tables(fit, path, sums, against, options.tuning.tables_memory)
     finally:
         if os.path.exists(path):
             os.remove(path)
@@ -183,15 +188,10 @@ def validate(fit, data, *, against=None, batch_rows: int = 1_000_000, progress=F
             second.close()
 
 
-#: DuckDB's working memory for the hold-out tables (sorts and windows over one row per
-#: hold-out row); beyond it DuckDB spills to its temporary folder
-TABLES_MEMORY = "1GB"
-
-
-def _tables(fit, path: str, sums: dict, challenger) -> Validation:
+def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Validation:
     con = duckdb.connect()
-    if TABLES_MEMORY:
-        con.execute(f"SET memory_limit = '{TABLES_MEMORY}'")
+    if memory:
+        con.execute(f"SET memory_limit = '{memory}'")
         con.execute("SET preserve_insertion_order = false")
     literal = "'" + path.replace("'", "''") + "'"
     con.execute(f"CREATE VIEW h AS SELECT *, expected / exposure AS rate "

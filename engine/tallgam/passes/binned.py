@@ -1,4 +1,5 @@
-"""Covariate discretization: the data passes on small tables of distinct design rows.
+"""Binned data passes: covariate discretization, the passes on small tables of distinct
+design rows.
 
 Every term reads its row of the design from a few input columns. When each numeric input
 takes a modest number of values, a term's row is one of a small table of distinct rows,
@@ -11,8 +12,8 @@ codes and multiplies the tables in afterwards:
 so a row costs one addition per pair of terms instead of one multiply-add per pair of
 non-zeros, and the linear predictor is one table look-up per term.
 
-* A numeric column of whole numbers spanning at most ``EXACT_SPAN`` values is coded
-  *exactly* (code = value − minimum): the fit is the undiscretized fit, up to rounding.
+* A numeric column of whole numbers spanning at most ``tuning.exact_span`` values is coded
+  *exactly* (code = value − minimum): the fit is the exact-pass fit, up to rounding.
   Ages, years, bonus levels and counts are like this.
 * Other numeric columns are *binned*: every value is replaced by the nearest of ``points``
   grid values (the distinct profile values if there are that few, else half of them at
@@ -22,9 +23,9 @@ non-zeros, and the linear predictor is one table look-up per term.
 * Level columns are coded by their levels; a term of several inputs (a surface, a curve
   per level, a curve times a multiplier) is coded by the combination of its inputs' codes.
 
-A pair of terms whose cross-table would be large (``CELL_LIMIT`` cells) is summed with one
+A pair of terms whose cross-table would be large (``tuning.cell_limit`` cells) is summed with one
 side's design row expanded instead (as many multiply-adds as that row has non-zeros), or
-both (as the undiscretized kernel does). The result is the same :class:`PassState`.
+both (as the exact kernel does). The result is the same :class:`PassState`.
 """
 
 from __future__ import annotations
@@ -37,15 +38,10 @@ import numpy as np
 
 from tallgam.data.profile import DataProfile
 from tallgam.errors import DataError, SpecError
+from tallgam.options import DEFAULT_BIN_POINTS, MIN_BIN_POINTS, Tuning
 from tallgam.passes import kernels
 from tallgam.passes.design import Design
-from tallgam.passes.state import SCALARS, PassState, ScalarSums, _ordered_sum
-
-DEFAULT_POINTS = 200      # grid values of a binned column (discretize=True)
-MIN_POINTS = 10
-EXACT_SPAN = 1024         # whole-number columns with at most this many values: exact codes
-TABLE_ROWS = 4096         # a term of k numeric inputs gets at most TABLE_ROWS^(1/k) per input
-CELL_LIMIT = 1 << 16      # largest cross-table of one pair of terms, in cells
+from tallgam.passes.state import SCALARS, PassState, ScalarSums, ordered_sum
 
 CROSS, EXPAND_B, EXPAND_BOTH = 0, 1, 2
 
@@ -94,14 +90,14 @@ def column_grid(column: str, profile: DataProfile, points: int, exact_span: int
                 ) -> ColumnGrid:
     """The grid of a numeric column from its profile: exact when it holds whole numbers
     spanning at most ``exact_span`` values, else ``points`` values."""
-    fp = profile[f"num:{column}"]
+    fp = profile.numeric(column)
     lo, hi = float(fp.min), float(fp.max)
     if fp.integer and hi - lo + 1 <= exact_span:
         return ColumnGrid(column, np.arange(lo, hi + 1.0), True, 0.0)
     if fp.values is not None and 0 < len(fp.values) <= points:
         values = np.unique(np.concatenate([fp.values.astype(np.float64), [lo, hi]]))
     elif fp.values is not None and len(fp.values):
-        weight = fp.counts.astype(np.float64)
+        weight = fp.rows.astype(np.float64)
         cum = np.cumsum(weight) - 0.5 * weight
         half = points // 2   # quantiles where the rows are, an even spread for the tails
         q = np.interp(np.linspace(0, 1, half) * cum[-1], cum, fp.values)
@@ -117,7 +113,7 @@ def column_grid(column: str, profile: DataProfile, points: int, exact_span: int
 
 def _span(profile: DataProfile, column: str) -> int | None:
     """The number of whole values a whole-number column spans (None: not whole numbers)."""
-    fp = profile[f"num:{column}"]
+    fp = profile.numeric(column)
     return int(fp.max - fp.min) + 1 if fp.integer else None
 
 
@@ -129,7 +125,7 @@ class Factor:
     start: int           # first raw coefficient
     n_raw: int
     m: int               # table rows (codes 0..m-1)
-    levels: bool         # a level term: the table is the identity
+    level_term: bool     # a level term: the table is the identity
     table_idx: np.ndarray  # (m, width) raw column of each non-zero
     table_val: np.ndarray  # (m, width)
 
@@ -141,33 +137,36 @@ class Factor:
         return out
 
 
-class DiscreteDesign:
+class BinnedDesign:
     """A :class:`~tallgam.passes.design.Design` with every term coded into a table.
 
     Same interface as :class:`~tallgam.passes.design.Design` for a data pass
     (:meth:`read`, :meth:`pass_coefficients`, :meth:`predict`, :meth:`accumulator`)."""
 
-    def __init__(self, design: Design, profile: DataProfile, points: int = DEFAULT_POINTS):
-        if int(points) < MIN_POINTS:
-            raise SpecError(f"discretize needs at least {MIN_POINTS} grid values per column, "
-                            f"got {points}")
+    def __init__(self, design: Design, profile: DataProfile, points: int = DEFAULT_BIN_POINTS,
+                 tuning: Tuning | None = None):
+        if int(points) < MIN_BIN_POINTS:
+            raise SpecError(f"binned passes need at least {MIN_BIN_POINTS} grid values per "
+                            f"column, got {points}")
+        tuning = tuning or Tuning()
+        self.tuning = tuning
         self.design = design
         self.points = int(points)
         # one grid per (column, resolution): a column in a single-input term keeps the full
-        # resolution; the inputs of a surface share TABLE_ROWS table rows between them
+        # resolution; the inputs of a surface share tuning.table_rows table rows
         self.grids: dict[tuple[str, int, int], ColumnGrid] = {}
         self._grid_of: dict[tuple[str, str], tuple[str, int, int]] = {}
         for b in design.bases:
             numeric = [c for c, kind in self._inputs(b) if kind == "numeric"]
-            plan = {c: (self.points, max(EXACT_SPAN, self.points)) for c in numeric}
+            plan = {c: (self.points, max(tuning.exact_span, self.points)) for c in numeric}
             if len(numeric) > 1:  # whole-number inputs stay exact if their table fits
                 spans = {c: _span(profile, c) for c in numeric}
                 exact = [c for c in numeric if spans[c] is not None]
-                if np.prod([spans[c] for c in exact]) > TABLE_ROWS:
+                if np.prod([spans[c] for c in exact]) > tuning.table_rows:
                     exact = []
-                room = TABLE_ROWS / max(1, np.prod([spans[c] for c in exact]))
+                room = tuning.table_rows / max(1, np.prod([spans[c] for c in exact]))
                 binned = len(numeric) - len(exact)
-                cap = max(MIN_POINTS, int(room ** (1.0 / max(binned, 1)) + 1e-9))
+                cap = max(MIN_BIN_POINTS, int(room ** (1.0 / max(binned, 1)) + 1e-9))
                 plan = {c: (spans[c], spans[c]) if c in exact else (min(self.points, cap), 0)
                         for c in numeric}
             for c in numeric:
@@ -177,9 +176,9 @@ class DiscreteDesign:
                     self.grids[key] = column_grid(c, profile, points, span)
                 self._grid_of[(b.label, c)] = key
         self.factors: list[Factor] = []
-        for b, col0 in zip(design.dense, design.dense_starts):
+        for b, col0 in zip(design.dense_terms, design.dense_starts):
             self.factors.append(self._dense_factor(b, col0))
-        for b, off in zip(design.levels, design.level_offsets):
+        for b, off in zip(design.level_terms, design.level_offsets):
             k = b.n_raw
             self.factors.append(Factor(b.label, design.pd + off, k, k, True,
                                        (design.pd + off + np.arange(k, dtype=np.int32))[:, None],
@@ -188,7 +187,7 @@ class DiscreteDesign:
 
     # ------------------------------------------------------------------ coding
     def _inputs(self, b) -> list[tuple[str, str]]:
-        return list(b.spec.input_kinds().items()) if b.inputs else []
+        return list(b.spec.input_kinds().items())
 
     def _dense_factor(self, b, col0: int) -> Factor:
         import pyarrow as pa
@@ -200,18 +199,18 @@ class DiscreteDesign:
             if kind == "numeric":
                 axes.append(self.grids[self._grid_of[(b.label, c)]].values)
             else:
-                axes.append(np.arange(len(b.levels)))
+                axes.append(np.arange(len(b.level_sets()[c])))
             sizes.append(len(axes[-1]))
         m = int(np.prod(sizes)) if sizes else 1
         if m > np.iinfo(np.int32).max:
             raise SpecError(f"the term {b.label} has too many value combinations to "
-                            "discretize; lower discretize's grid size")
+                            "bin; lower the grid size given as binned=")
         mesh = np.meshgrid(*axes, indexing="ij") if axes else []
         cols = {}
         for (c, kind), grid in zip(inputs, mesh):
             flat = grid.ravel()
             cols[c] = (flat.astype(np.float64) if kind == "numeric"
-                       else pa.array([b.levels[i] for i in flat.astype(np.int64)],
+                       else pa.array([b.level_sets()[c][i] for i in flat.astype(np.int64)],
                                      type=pa.string()))
         idx = np.empty((m, b.width), dtype=np.int32)
         val = np.empty((m, b.width), dtype=np.float64)
@@ -224,21 +223,21 @@ class DiscreteDesign:
         out = np.empty((n, len(self.factors)), dtype=self.code_dtype)
         col_codes = {key: g.codes(cols[key[0]]) for key, g in self.grids.items()}
         f = 0
-        for b in self.design.dense:
+        for b in self.design.dense_terms:
             code = np.zeros(n, dtype=np.int64)
             for c, kind in self._inputs(b):
                 if kind == "numeric":
                     key = self._grid_of[(b.label, c)]
                     code = code * len(self.grids[key].values) + col_codes[key]
                 else:
-                    lv = b.level_codes(cols)
+                    lv = b.input_codes(cols, c)
                     _no_unknown(lv, c)
-                    code = code * len(b.levels) + lv
+                    code = code * len(b.level_sets()[c]) + lv
             out[:, f] = code
             f += 1
-        for b in self.design.levels:
+        for b in self.design.level_terms:
             lv = b.codes(cols)
-            _no_unknown(lv, b.spec.column)
+            _no_unknown(lv, b.inputs[0])
             out[:, f] = lv
             f += 1
         return out
@@ -267,17 +266,17 @@ class DiscreteDesign:
                 fa, fb = self.factors[a], self.factors[b]
                 if fa.m == 1 or fb.m == 1:
                     continue  # a constant term (the intercept): from the per-code sums
-                if fa.m * fb.m <= CELL_LIMIT or (fa.levels and fb.levels):
+                if fa.m * fb.m <= self.tuning.cell_limit or (fa.level_term and fb.level_term):
                     pairs.append((CROSS, a, b, cells, fb.m))
                     cells += fa.m * fb.m
                     continue
                 options = []
-                if not fa.levels:   # code side b, a expanded
+                if not fa.level_term:   # code side b, a expanded
                     options.append((fb.m * fa.n_raw, b, a))
-                if not fb.levels:
+                if not fb.level_term:
                     options.append((fa.m * fb.n_raw, a, b))
                 size, ca, cb = min(options)
-                if fa.levels or fb.levels or size <= 16 * CELL_LIMIT:
+                if fa.level_term or fb.level_term or size <= 16 * self.tuning.cell_limit:
                     pairs.append((EXPAND_B, ca, cb, cells, self.factors[cb].n_raw))
                     cells += size
                 else:
@@ -316,7 +315,7 @@ class DiscreteDesign:
 
     def notes(self) -> list[str]:
         binned = [g.describe() for g in self.grids.values()]
-        return ["discretized covariates: " + "; ".join(binned)] if binned else []
+        return ["binned passes: " + "; ".join(binned)] if binned else []
 
     # ------------------------------------------------------------------ pass interface
     def read(self, cols: dict):
@@ -330,14 +329,14 @@ class DiscreteDesign:
         for f, fac in enumerate(self.factors):
             b = beta[fac.start:fac.start + fac.n_raw]
             lo = self.vec_off[f]
-            out[lo:lo + fac.m] = b if fac.levels else self.matrix(f) @ b
+            out[lo:lo + fac.m] = b if fac.level_term else self.matrix(f) @ b
         return out
 
     def predict(self, codes: np.ndarray, coef: np.ndarray, out: np.ndarray) -> None:
-        kernels.discrete_predictor(codes, coef, self.vec_off, out)
+        kernels.binned_predictor(codes, coef, self.vec_off, out)
 
-    def accumulator(self, threads: int) -> DiscreteAccumulator:
-        return DiscreteAccumulator(self, threads)
+    def accumulator(self, threads: int) -> BinnedAccumulator:
+        return BinnedAccumulator(self, threads)
 
 
 def _no_unknown(codes: np.ndarray, column: str) -> None:
@@ -347,10 +346,10 @@ def _no_unknown(codes: np.ndarray, column: str) -> None:
                         "during the fit: fit again on a stable copy")
 
 
-class DiscreteAccumulator(ScalarSums):
+class BinnedAccumulator(ScalarSums):
     """Per-thread cross-tables for one pass; :meth:`finish` turns them into a PassState."""
 
-    def __init__(self, dd: DiscreteDesign, threads: int):
+    def __init__(self, dd: BinnedDesign, threads: int):
         self.dd = dd
         self.cells = np.zeros((threads, dd.cells))
         self.vec = np.zeros((threads, 3, int(dd.vec_off[-1])))
@@ -358,7 +357,7 @@ class DiscreteAccumulator(ScalarSums):
 
     def add(self, codes: np.ndarray, w: np.ndarray, r: np.ndarray, wc: np.ndarray) -> None:
         dd = self.dd
-        kernels.accumulate_discrete(codes, w, r, wc, dd.vec_off, dd.pair_mode, dd.pair_a,
+        kernels.accumulate_binned(codes, w, r, wc, dd.vec_off, dd.pair_mode, dd.pair_a,
                                     dd.pair_b, dd.pair_off, dd.pair_stride, dd.f_start,
                                     dd.tab_off, dd.tab_idx, dd.tab_val, dd.tab_width,
                                     self.cells, self.vec)
@@ -367,19 +366,19 @@ class DiscreteAccumulator(ScalarSums):
     def finish(self) -> PassState:
         dd = self.dd
         design = dd.design
-        cells = _ordered_sum(self.cells)
-        vec = _ordered_sum(self.vec)
+        cells = ordered_sum(self.cells)
+        vec = ordered_sum(self.vec)
         counts, sums, csums = vec
         pd = design.pd
-        state = PassState.zeros(pd, [b.n_raw for b in design.levels])
-        n_dense = len(design.dense)
+        state = PassState.zeros(pd, design.level_sizes)
+        n_dense = len(design.dense_terms)
 
         def per_code(f, v):
             lo = dd.vec_off[f]
             return v[lo:lo + dd.factors[f].m]
 
         def left(f, M):   # X̄_fᵀ M
-            return M if dd.factors[f].levels else dd.matrix(f).T @ M
+            return M if dd.factors[f].level_term else dd.matrix(f).T @ M
 
         def put(a, b, block):  # block: raw columns of a × raw columns of b, a < b
             fa, fb = dd.factors[a], dd.factors[b]
@@ -396,7 +395,7 @@ class DiscreteAccumulator(ScalarSums):
         F = len(dd.factors)
         for f, fac in enumerate(dd.factors):
             c = per_code(f, counts)
-            if fac.levels:
+            if fac.level_term:
                 lo = fac.start - pd
                 state.diag[lo:lo + fac.n_raw] = c
             else:

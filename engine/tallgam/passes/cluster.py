@@ -27,13 +27,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from tallgam.data.sources import Source, _expand_paths, _file_kind, quote
+from tallgam.data.sources import Source, expand_paths, file_kind, quote
 from tallgam.errors import DataError, SpecError, TallgamError, TallgamWarning
+from tallgam.options import RunOptions, Tuning
 from tallgam.progress import Event
 
-#: a single Parquet file is split at row-group boundaries into parts of at least this many
-#: rows (so a task is never dominated by its fixed cost)
-PARTITION_MIN_ROWS = 250_000
 #: how long to try to reach a scheduler given by its address
 CONNECT_SECONDS = 30
 #: how long to wait for a scheduler without workers
@@ -99,8 +97,8 @@ def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[
             f"Parquet/CSV files or a hive-partitioned directory on storage the workers share); "
             f"{source.label} exists only in this process. Write it to Parquet on shared "
             "storage first, or fit without cluster=")
-    given, hive = _expand_paths(_data_items(data, source))
-    kind = _file_kind(given)
+    given, hive = expand_paths(_data_items(data, source))
+    kind = file_kind(given)
     files = [os.path.abspath(f) for f in given]   # workers have another working directory
     schema = tuple(source.schema.items())
     hive_types = None
@@ -108,7 +106,7 @@ def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[
         keys = {part.split("=", 1)[0] for f in given for part in Path(f).parent.parts
                 if "=" in part}
         hive_types = tuple((k, t) for k, t in schema if k in keys)
-    limit = PARTITION_MIN_ROWS if min_rows is None else int(min_rows)
+    limit = Tuning().partition_min_rows if min_rows is None else int(min_rows)
     if len(files) == 1 and kind == "parquet" and "file_row_number" not in source.schema:
         ranges = _row_group_ranges(files[0], limit)
         return [Partition(i, len(ranges), kind, (files[0],), r, hive_types, schema)
@@ -280,7 +278,7 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
     The part is written under a temporary name and renamed when complete, so a task run
     twice (its worker died) or killed half-way never leaves a partial part under the final
     name. Returns the part's :class:`~tallgam.outputs.scoring.ScoreReport`."""
-    from tallgam.outputs.scoring import ABORT_MARKER, PART_NAME, Scorer, write_scores
+    from tallgam.outputs.scoring import Scorer, write_scores
 
     marker = os.path.join(folder, ABORT_MARKER)
 
@@ -458,10 +456,11 @@ class ClusterPasses:
         self.threads = threads
 
     @classmethod
-    def open(cls, cluster, data, source: Source, callback=None, threads: int | None = None
-             ) -> ClusterPasses:
-        """Partition ``data``, connect, and check that every worker sees every file."""
-        parts = partitions_of(data, source)
+    def open(cls, cluster, data, source: Source, callback=None, threads: int | None = None,
+             min_rows: int | None = None) -> ClusterPasses:
+        """Partition ``data`` (a single Parquet file into runs of row groups of at least
+        ``min_rows`` rows), connect, and check that every worker sees every file."""
+        parts = partitions_of(data, source, min_rows=min_rows)
         session = ClusterSession(cluster)
         try:
             session.check(sorted({f for p in parts for f in p.files}))
@@ -507,3 +506,115 @@ def _rows_of(result) -> int:
     if scalars is not None:
         return int(scalars["rows"])
     return int(getattr(result, "rows", 0))
+
+
+# --------------------------------------------------------------------------- scoring
+
+PART_NAME = "part-{:05d}.parquet"
+_PART_PATTERN = r"part-\d{5}\.parquet"
+
+
+def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] | list[str] = (),
+                       terms: bool = False, se: bool = False, with_offset: bool = True,
+                       unseen: str = "error", batch_rows: int = 1_000_000,
+                       threads: int | None = None, progress=False):
+    """Score ``data`` on a Dask cluster into a directory of Parquet part files; returns
+    the :class:`~tallgam.outputs.scoring.ScoreReport`.
+
+    One task per partition of ``data`` (see :mod:`tallgam.cluster`); each writes
+    ``part-NNNNN.parquet`` (NNNNN: the partition number; a partition without rows writes
+    none) into a hidden temporary directory beside ``output_dir``, under a temporary name
+    renamed when complete. The directory is renamed to ``output_dir`` only when every part
+    succeeded; on any failure the temporary directory is removed, so a failed run leaves no
+    output. Columns as in :func:`score_to_parquet`; rows in input order within each part.
+    An existing ``output_dir`` is replaced only if it holds nothing but part files.
+    """
+    import re
+    import shutil
+    import tempfile
+
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from tallgam.data.sources import open_source
+    from tallgam.outputs.scoring import Scorer
+    from tallgam.progress import make_callback
+
+    options = RunOptions(batch_rows=batch_rows, threads=threads)
+    batch_rows, threads = options.batch_rows, options.threads
+    callback = make_callback(progress)
+    out = os.path.abspath(os.fspath(output_dir))
+    folder = os.path.dirname(out)
+    if not os.path.isdir(folder):
+        raise DataError(f"the output folder {folder!r} does not exist")
+    if os.path.isfile(out):
+        raise DataError(f"{out!r} is a file; scoring on a cluster writes a directory of part "
+                        "files: give a directory name")
+    if os.path.isdir(out):
+        other = [e for e in sorted(os.listdir(out)) if not re.fullmatch(_PART_PATTERN, e)]
+        if other:
+            raise DataError(f"the output directory {out!r} exists and holds other files than "
+                            f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
+    source = open_source(data)
+    owned = source is not data
+    session = tmp = None
+    try:
+        # checks the model's columns against the data here, before any task runs
+        scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
+        parts = partitions_of(data, source)
+        session = ClusterSession(cluster)
+        tmp = tempfile.mkdtemp(prefix=".tallgam-score-", dir=folder)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o777 & ~umask)  # workers may run as another user
+        session.check(sorted({f for p in parts for f in p.files}), [tmp])
+        options = {"keep": tuple(keep), "terms": terms, "se": se, "with_offset": with_offset,
+                   "unseen": unseen, "batch_rows": int(batch_rows)}
+        callback(Event("start", "scoring"))
+        done = [0]
+
+        def advance(i, report):
+            done[0] += report.rows
+            callback(Event("advance", "scoring", rows=done[0]))
+
+        def abort():  # tasks still to start, or between batches, give up on seeing this
+            with open(os.path.join(tmp, ABORT_MARKER), "w"):
+                pass
+        reports = session.run(score_task, parts, fit, (tmp, options, threads), "score",
+                              advance, abort=abort)
+        for r in reports:
+            scorer.report.rows += r.rows
+            scorer.report.clamped.update(r.clamped)
+            scorer.report.unseen.update(r.unseen)
+        for entry in os.listdir(tmp):  # what workers that died while writing left behind
+            if not re.fullmatch(_PART_PATTERN, entry):
+                os.remove(os.path.join(tmp, entry))
+        if not os.listdir(tmp):  # no rows at all: one valid, empty part with the columns
+            names = list(keep) + ["prediction", "link"]
+            pq.write_table(pa.table({n: pa.array([], pa.float64()) for n in names}),
+                           os.path.join(tmp, PART_NAME.format(0)))
+        if os.path.isdir(out):
+            old = os.path.join(folder, f".tallgam-old-{uuid.uuid4().hex[:10]}")
+            os.rename(out, old)
+            try:
+                os.rename(tmp, out)
+            except BaseException:
+                os.rename(old, out)
+                raise
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.rename(tmp, out)
+        tmp = None
+        callback(Event("end", "scoring", rows=done[0]))
+    finally:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        if session is not None:
+            session.close()
+        if owned:
+            source.close()
+    scorer.report.warn()
+    return scorer.report
+
+
+ABORT_MARKER = ".abort"

@@ -15,7 +15,7 @@ import numpy as np
 import pyarrow as pa
 
 from tallgam.passes import kernels
-from tallgam.terms import Basis
+from tallgam.terms.base import Basis
 
 CHUNK_ROWS = 65_536
 
@@ -38,13 +38,13 @@ class Design:
 
     def __init__(self, bases: list[Basis]):
         self.bases = bases
-        self.dense = [b for b in bases if b.group == "dense"]
-        self.levels = [b for b in bases if b.group == "levels"]
-        self.pd = sum(b.n_raw for b in self.dense)
-        self.pl = sum(b.n_raw for b in self.levels)
+        self.dense_terms = [b for b in bases if b.group == "dense"]
+        self.level_terms = [b for b in bases if b.group == "levels"]
+        self.pd = sum(b.n_raw for b in self.dense_terms)
+        self.pl = sum(b.n_raw for b in self.level_terms)
         self.p = self.pd + self.pl
-        self.q = sum(b.width for b in self.dense)
-        self.m = len(self.levels)
+        self.q = sum(b.width for b in self.dense_terms)
+        self.m = len(self.level_terms)
         self.slices: list[slice] = []  # raw coefficient range of each basis, in bases order
         self.level_offsets: list[int] = []
         d_off, l_off = 0, 0
@@ -56,6 +56,11 @@ class Design:
                 self.slices.append(slice(self.pd + l_off, self.pd + l_off + b.n_raw))
                 self.level_offsets.append(l_off)
                 l_off += b.n_raw
+
+    @property
+    def level_sizes(self) -> list[int]:
+        """Levels of every level term, in order."""
+        return [b.n_raw for b in self.level_terms]
 
     @property
     def dense_starts(self) -> list[int]:
@@ -70,14 +75,11 @@ class Design:
                 seen.setdefault(c, None)
         return list(seen)
 
-    def level_inputs(self) -> set[str]:
-        return {c for b in self.levels for c in b.inputs}
-
     def blocks(self, cols: dict) -> Iterator[tuple[slice, Encoded]]:
         """Encode the columns of one batch in blocks of at most CHUNK_ROWS rows."""
         n = _rows(cols)
         codes = []
-        for b, off in zip(self.levels, self.level_offsets):
+        for b, off in zip(self.level_terms, self.level_offsets):
             c = b.codes(cols)
             codes.append(np.where(c >= 0, c + off, -1).astype(np.int32))
         for start in range(0, n, CHUNK_ROWS):
@@ -85,7 +87,7 @@ class Design:
             part = {k: (v[start:stop] if isinstance(v, np.ndarray) else v) for k, v in cols.items()}
             yield slice(start, stop), self._encode_block(part, codes, start, stop)
 
-    # the interface a data pass uses (shared with tallgam.passes.binned.DiscreteDesign)
+    # the interface a data pass uses (shared with tallgam.passes.binned.BinnedDesign)
     def read(self, cols: dict) -> Iterator[tuple[slice, Encoded]]:
         """A batch's rows in the blocks the kernels take."""
         return self.blocks(cols)
@@ -101,14 +103,14 @@ class Design:
     def accumulator(self, threads: int):
         from tallgam.passes.state import Accumulator
 
-        return Accumulator(self.pd, [b.n_raw for b in self.levels], threads)
+        return Accumulator(self.pd, self.level_sizes, threads)
 
     def _encode_block(self, cols, codes, start, stop) -> Encoded:
         n = stop - start
         idx = np.empty((n, self.q), dtype=np.int32)
         val = np.empty((n, self.q), dtype=np.float64)
         slot = 0
-        for b, col0 in zip(self.dense, self.dense_starts):
+        for b, col0 in zip(self.dense_terms, self.dense_starts):
             b.encode(cols, idx[:, slot:slot + b.width], val[:, slot:slot + b.width], col0)
             slot += b.width
         lev = np.empty((n, self.m), dtype=np.int32)

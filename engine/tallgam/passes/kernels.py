@@ -15,21 +15,19 @@ and the caller sums them in thread order, so no atomics and a fixed reduction or
 
 from __future__ import annotations
 
-import math
-
 import numba
-import numpy as np
 
 
 @numba.njit(cache=True, parallel=True)
-def accumulate(idx, val, lev, w, r, wp, dense, cross, diag, rhs_d, rhs_l, col_d, col_l):
+def accumulate(idx, val, lev, w, r, wc, dense, cross, diag, rhs_d, rhs_l, col_d, col_l):
     """Add one block of rows to per-thread normal-equation accumulators.
 
     Parameters
     ----------
     idx, val, lev : encoded rows (see module docstring).
     w : (n,) working weights.  r : (n,) working residuals z - (η - offset) at the anchor β.
-    wp : (n,) prior weights, for the weighted column sums used by identifiability constraints.
+    wc : (n,) constraint weights (exposure, else prior weights): the weighted column sums
+        Σ wc·x that fix the identifiability constraints.
     dense : (T, pd, pd) upper triangle of XᵀWX within the dense group.
     cross : (T, L, pd) level-by-dense cross products.  diag : (T, L) level block diagonal.
     rhs_d : (T, pd), rhs_l : (T, L) XᵀW r.  col_d : (T, pd), col_l : (T, L) Xᵀwp.
@@ -46,7 +44,7 @@ def accumulate(idx, val, lev, w, r, wp, dense, cross, diag, rhs_d, rhs_l, col_d,
         for i in range(lo, hi):
             wi = w[i]
             wri = wi * r[i]
-            wpi = wp[i]
+            wpi = wc[i]
             for a in range(q):
                 ia = idx[i, a]
                 va = val[i, a]
@@ -180,11 +178,11 @@ def quadratic_form_rows_eliminated(idx, val, lev, pd, position, cov, e_start, e_
 
 
 @numba.njit(cache=True, parallel=True)
-def accumulate_discrete(codes, w, r, wp, vec_off, mode, pa, pb, off, stride, f_start,
+def accumulate_binned(codes, w, r, wc, vec_off, mode, pa, pb, off, stride, f_start,
                         tab_off, tab_idx, tab_val, tab_width, cells, vec):
     """Add one block of coded rows to per-thread cross-tables.
 
-    vec : (T, 3, Σm) per-code sums of w, w·r and wp.  cells : (T, C) the pair tables: mode
+    vec : (T, 3, Σm) per-code sums of w, w·r and wc.  cells : (T, C) the pair tables: mode
     0 a cross-table C[code_a, code_b] += w (stride m_b); mode 1 the code of a against the
     expanded design row of b, H[code_a, j] += w·x_bj (stride n_raw_b); mode 2 both expanded,
     F[i, j] += w·x_ai·x_bj (stride n_raw_b). Threads own contiguous row ranges.
@@ -201,7 +199,7 @@ def accumulate_discrete(codes, w, r, wp, vec_off, mode, pa, pb, off, stride, f_s
         for i in range(lo, hi):
             wi = w[i]
             wri = wi * r[i]
-            wpi = wp[i]
+            wpi = wc[i]
             for f in range(F):
                 j = vec_off[f] + codes[i, f]
                 vt[0, j] += wi
@@ -231,7 +229,7 @@ def accumulate_discrete(codes, w, r, wp, vec_off, mode, pa, pb, off, stride, f_s
 
 
 @numba.njit(cache=True, parallel=True)
-def discrete_predictor(codes, coef, vec_off, out):
+def binned_predictor(codes, coef, vec_off, out):
     """out[i] += Σ_f coef[vec_off[f] + codes[i, f]]  (shape (n,))."""
     n, F = codes.shape
     for i in numba.prange(n):
@@ -262,81 +260,3 @@ def grid_codes(x, mid, lo, scale, lut, out):
         while k > 0 and mid[k - 1] >= v:
             k -= 1
         out[i] = k
-
-
-# --------------------------------------------------------------------------- fused families
-# The working model of a pass, row by row in one loop, for the commonest pricing model
-# (Poisson with the log link). Same definitions as tallgam.families / tallgam.links; the
-# generic numpy path is the reference (tests/test_discrete.py compares the two).
-
-LGAMMA_TABLE = np.array([math.lgamma(k + 1.0) for k in range(256)])
-EPS_MU = 1e-10
-
-
-@numba.njit(cache=True)
-def _lgamma1(y, table):
-    k = int(y)
-    if k == y and 0 <= k < table.shape[0]:
-        return table[k]
-    return math.lgamma(y + 1.0)
-
-
-@numba.njit(cache=True, parallel=True)
-def poisson_log_working(fitted, o, y, w, null_eta, y_mean, table, wz, r):
-    """Fill wz, r (working weights and residuals) from η − o = ``fitted`` and return the
-    pass's sums: (invalid_rows, weight, resid_ss, deviance, pearson, response_ss,
-    centred_ss, centred_sum, log_weight, loglik, null_deviance, null_weight, null_score,
-    bad), ``bad`` counting rows whose weight or residual is not finite."""
-    n = y.shape[0]
-    invalid = 0.0
-    weight = 0.0
-    resid_ss = 0.0
-    deviance = 0.0
-    pearson = 0.0
-    response_ss = 0.0
-    centred_ss = 0.0
-    centred_sum = 0.0
-    log_weight = 0.0
-    loglik = 0.0
-    null_dev = 0.0
-    null_w = 0.0
-    null_score = 0.0
-    bad = 0.0
-    for i in numba.prange(n):
-        eta = fitted[i] + o[i]
-        d = math.exp(min(eta, 700.0))
-        if not (math.isfinite(d) and d > 0.0):
-            invalid += 1.0
-        mu = max(d, EPS_MU)
-        wi = w[i]
-        yi = y[i]
-        wzi = wi * d * d / mu
-        ri = (yi - mu) / d
-        if not (math.isfinite(wzi) and math.isfinite(ri)):
-            bad += 1.0
-        wz[i] = wzi
-        r[i] = ri
-        lmu = math.log(mu)
-        ylogy = yi * math.log(yi) if yi > 0.0 else 0.0
-        ylogmu = yi * lmu if yi != 0.0 else 0.0
-        e = yi - mu
-        weight += wi
-        resid_ss += wzi * ri * ri
-        deviance += wi * 2.0 * ((ylogy - ylogmu) - e)
-        pearson += wi * e * e / mu
-        response_ss += wi * e * e
-        c = yi - y_mean
-        centred_ss += wi * c * c
-        centred_sum += wi * c
-        log_weight += math.log(wi)
-        loglik += wi * (ylogmu - mu - _lgamma1(yi, table))
-        eta0 = o[i] + null_eta
-        d0 = math.exp(min(eta0, 700.0))
-        mu0 = max(d0, EPS_MU)
-        w0 = wi * d0 * d0 / mu0
-        ylogmu0 = yi * math.log(mu0) if yi != 0.0 else 0.0
-        null_dev += wi * 2.0 * ((ylogy - ylogmu0) - (yi - mu0))
-        null_w += w0
-        null_score += w0 * (yi - mu0) / d0
-    return (invalid, weight, resid_ss, deviance, pearson, response_ss, centred_ss,
-            centred_sum, log_weight, loglik, null_dev, null_w, null_score, bad)

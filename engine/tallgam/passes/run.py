@@ -17,7 +17,6 @@ import numpy as np
 from tallgam.data.inputs import WC, Inputs, O, W, Y
 from tallgam.data.sources import Source
 from tallgam.errors import FitError
-from tallgam.passes import kernels
 from tallgam.passes.design import Design, batch_columns
 from tallgam.passes.state import PassState
 from tallgam.progress import Event
@@ -41,30 +40,31 @@ class PassPlan:
     y_mean: float
     scale_est: float
     batch_rows: int
-    discrete: object = None   # a tallgam.passes.binned.DiscreteDesign: run on coded rows
+    binned: object = None     # a tallgam.passes.binned.BinnedDesign: run on coded rows
     more_passes: bool = True  # False when this pass is known to be the only one
+    fused: bool = True        # use the family's fused working-model loop when it has one
 
     @property
     def layout(self):
-        """What encodes the rows: the design, or its discretized form."""
-        return self.discrete if self.discrete is not None else self.design
+        """What encodes the rows: the design, or its binned form."""
+        return self.binned if self.binned is not None else self.design
 
 
 class LocalPasses:
     """Runs passes over one source in this process (the default runner).
 
-    With ``cache`` (a :class:`~tallgam.data.scratch.ScratchPolicy`), a discretized fit writes
-    the coded rows to a scratch folder during its first pass and reads them from there in
-    later passes instead of the source; :meth:`close` removes the folder."""
+    With ``scratch_policy`` (a :class:`~tallgam.data.scratch.ScratchPolicy`), a binned fit
+    writes the coded rows to a scratch folder during its first pass and reads them from
+    there in later passes instead of the source; :meth:`close` removes the folder."""
 
-    def __init__(self, source: Source, callback=None, cache=None):
+    def __init__(self, source: Source, callback=None, scratch_policy=None):
         self.source = source
         self.callback = callback
-        self.policy = cache
+        self.policy = scratch_policy
         self.scratch = None
 
     def _scratch(self, plan: PassPlan, rows: int | None):
-        if plan.discrete is None or self.policy is None:
+        if plan.binned is None or self.policy is None:
             return None
         if not plan.more_passes and (self.scratch is None or not self.scratch.complete):
             return None   # a single pass: a scratch copy would only cost
@@ -128,7 +128,6 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
             scratch.discard()
 
 
-FUSED = True  # families with a working_kernel for the link run it in one numba loop
 FUSED_SUMS = ("invalid_rows", "weight", "resid_ss", "deviance", "pearson", "response_ss",
               "centred_ss", "centred_sum", "log_weight", "loglik", "null_deviance",
               "null_weight", "null_score", "bad")
@@ -159,9 +158,9 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
         coef = layout.pass_coefficients(beta)
     if beta_prev is not None:
         step = layout.pass_coefficients(beta - beta_prev)
-    three_scales = not fam.scale_known and fam.loglik_in_pass and fam.name != "gaussian"
+    three_scales = fam.loglik_at_three_scales
     scales = plan.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
-    fused = fam.working_kernel(link) if FUSED and beta is not None else None
+    fused = fam.working_kernel(link) if plan.fused and beta is not None else None
     for y, w, o, wc, block, batch_done in row_blocks(source, plan, scratch):
         m = len(y)
         w = w if w is not None else np.ones(m)
@@ -176,8 +175,8 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
                 layout.predict(block, step, change)
                 extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
             wz, r = np.empty(m), np.empty(m)
-            sums = dict(zip(FUSED_SUMS, fused(
-                fitted, o, y, w, plan.null_beta0, plan.y_mean, kernels.LGAMMA_TABLE, wz, r)))
+            sums = dict(zip(FUSED_SUMS, fused(fitted, o, y, w, plan.null_beta0, plan.y_mean,
+                                              wz, r)))
             bad = sums.pop("bad")
             if bad:
                 raise _outside_range(link, fam, int(bad), task)
@@ -266,15 +265,9 @@ def loglik_pass(source: Source, plan: PassPlan, scale: float, callback=None,
 
 
 def _start_mu(fam, link, y: np.ndarray, w: np.ndarray, y_mean: float) -> np.ndarray:
-    """Per-row starting means (McCullagh & Nelder 1989, §2.5: μ₀ from y, nudged inside
-    the mean space); rows where the link of that value is not finite start at the mean."""
-    name = fam.name
-    if name == "binomial":
-        mu = (w * y + 0.5) / (w + 1.0)
-    elif name in ("poisson", "negative_binomial", "tweedie"):
-        mu = y + 0.1
-    else:
-        mu = fam.clip_mu(y.copy())
+    """Per-row starting means from the family; rows where the link of that value is not
+    finite start at the mean."""
+    mu = fam.start_mu(y, w)
     with np.errstate(all="ignore"):
         bad = ~np.isfinite(link.link(mu))
     if bad.any():

@@ -180,13 +180,13 @@ class Accumulator(ScalarSums):
 
 
     def finish(self) -> PassState:
-        dense = _ordered_sum(self.dense)
+        dense = ordered_sum(self.dense)
         dense = dense + np.triu(dense, 1).T
         return PassState(
-            dense=dense, cross=_ordered_sum(self.cross), diag=_ordered_sum(self.diag),
+            dense=dense, cross=ordered_sum(self.cross), diag=ordered_sum(self.diag),
             pairs=self.pairs,
-            rhs=np.concatenate([_ordered_sum(self.rhs_d), _ordered_sum(self.rhs_l)]),
-            colsum=np.concatenate([_ordered_sum(self.col_d), _ordered_sum(self.col_l)]),
+            rhs=np.concatenate([ordered_sum(self.rhs_d), ordered_sum(self.rhs_l)]),
+            colsum=np.concatenate([ordered_sum(self.col_d), ordered_sum(self.col_l)]),
             scalars=dict(self.scalars))
 
 
@@ -206,7 +206,7 @@ def _level_rows(level_offsets: list[int], level_sizes: list[int], keep: list[int
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
 
-def _ordered_sum(per_thread: np.ndarray) -> np.ndarray:
+def ordered_sum(per_thread: np.ndarray) -> np.ndarray:
     out = per_thread[0].copy()
     for t in range(1, per_thread.shape[0]):
         out += per_thread[t]

@@ -26,7 +26,6 @@ from tallgam.solve.smoothing import (
     WorkingProblem,
     null_eigenvalues,
 )
-from tallgam.terms import RandomEffectBasis
 
 ELIMINATE_LEVELS = 200  # a random effect with at least this many levels is eliminated
 
@@ -54,7 +53,7 @@ class Constraints:
         for j in kept_bases:
             b, sl = design.bases[j], design.slices[j]
             z, mats = penalty_coordinates(b.constraint(colsum[sl]), b.penalties())
-            if b.selection and mats:  # Marra & Wood (2011): penalize the null space too
+            if b.removable and mats:  # Marra & Wood (2011): penalize the null space too
                 null = np.all(sum(np.abs(m) for m in mats) == 0, axis=0)
                 if null.any():
                     mats = mats + [np.diag(null.astype(np.float64))]
@@ -93,8 +92,8 @@ class Constraints:
             self.penalty_owner.extend([j] * len(mats))
             first += len(mats)
         if self.eliminated is not None:
-            # its penalties() would be an L × L identity: read the fixed λ from the spec
-            self.fixed.append(getattr(design.bases[self.eliminated].spec, "smoothing", None))
+            # its penalties() would be an L × L identity: only its fixed λ is asked for
+            self.fixed.extend(design.bases[self.eliminated].fixed_smoothing())
             self.penalty_owner.append(self.eliminated)
         from tallgam.solve.shapes import ShapeConstraints
 
@@ -148,7 +147,7 @@ class Constraints:
     def problem(self, state: PassState, anchor_beta: np.ndarray, scale: float | None
                 ) -> WorkingProblem:
         d = self.design
-        offsets, sizes = _level_offsets(d), [b.n_raw for b in d.levels]
+        offsets, sizes = list(d.level_offsets), d.level_sizes
         if self.eliminated is None:
             gram = state.gram(offsets, sizes)
             A = self.Z.T @ gram @ self.Z
@@ -156,7 +155,7 @@ class Constraints:
             return WorkingProblem(A=0.5 * (A + A.T), u=u, e=state.scalars["resid_ss"],
                                   anchor=self.to_free(anchor_beta), blocks=self.blocks,
                                   n=state.scalars["rows"], scale=scale)
-        term = d.levels.index(d.bases[self.eliminated])
+        term = d.level_terms.index(d.bases[self.eliminated])
         A = self.Z.T @ state.gram(offsets, sizes, skip=term) @ self.Z
         diag, cross, rhs = state.level_block(term, offsets, sizes)
         anchor = self.to_free(anchor_beta)
@@ -237,14 +236,5 @@ def _eliminated_basis(design: Design, eliminate_from: int | None) -> int | None:
     if not eliminate_from:
         return None
     sizes = {j: b.n_raw for j, b in enumerate(design.bases)
-             if isinstance(b, RandomEffectBasis) and b.n_raw >= eliminate_from}
+             if b.eliminable and b.n_raw >= eliminate_from}
     return max(sizes, key=sizes.get) if sizes else None
-
-
-def _level_offsets(d: Design) -> list[int]:
-    return list(d.level_offsets)
-
-
-def require_positive_weight(state: PassState) -> None:
-    if state.scalars["rows"] <= 0:
-        raise FitError("no rows reached the fit (check the where filter)")

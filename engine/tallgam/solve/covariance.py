@@ -95,6 +95,18 @@ class Covariance:
             return np.sum(X * X * self.diag[None, :], axis=1)
         return np.einsum("ij,jk,ik->i", X, self.block(sl), X)
 
+    def contrast_variance(self, a: np.ndarray) -> float:
+        """aᵀVa for a contrast ``a`` (p,) of the raw coefficients; one that touches the
+        eliminated term's levels may weight a single level only."""
+        a = np.asarray(a, dtype=np.float64)
+        out = float(a[self.kept] @ self.dense @ a[self.kept])
+        if self.structured:
+            ae = a[self.eliminated]
+            if np.count_nonzero(ae) > 1:
+                self.matrix()  # raises: covariances between its levels are not kept
+            out += float(ae @ (self.diag * ae)) + 2.0 * float(ae @ self.cross @ a[self.kept])
+        return out
+
     def row_variances(self, enc, pd: int, out: np.ndarray) -> None:
         """out[i] = xᵢᵀVxᵢ for an encoded block of rows (see :mod:`tallgam.kernels`)."""
         if not self.structured:

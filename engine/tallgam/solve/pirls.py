@@ -28,16 +28,18 @@ from tallgam.data.inputs import (
     resolved_expressions,
 )
 from tallgam.data.profile import DataProfile, add_value_histograms, run_profile
+from tallgam.data.scratch import ScratchPolicy
 from tallgam.data.sources import Source, open_source
-from tallgam.errors import ConvergenceWarning, DataError, FitError, SpecError, TallgamWarning
-from tallgam.model import Model
+from tallgam.errors import ConvergenceWarning, FitError, TallgamWarning
+from tallgam.options import RunOptions
+from tallgam.passes.binned import BinnedDesign
 from tallgam.passes.design import Design
 from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
 from tallgam.passes.state import PassState
 from tallgam.progress import Event, make_callback
 from tallgam.solve.constraints import Constraints
 from tallgam.solve.smoothing import RHO_BOUND, Solution, select, solve
-from tallgam.terms import Basis, InterceptBasis
+from tallgam.terms.base import Basis, InterceptBasis
 
 
 @dataclass
@@ -58,7 +60,7 @@ class PassRecord:
 class FitState:
     """Everything the result needs from the driver."""
 
-    model: Model
+    model: object
     design: Design
     constraints: Constraints
     profile: DataProfile
@@ -79,37 +81,37 @@ class FitState:
     extra_statistics: dict = field(default_factory=dict)
 
 
-def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int | None = None,
-              progress=False, cluster=None, discretize: bool | int = False,
-              scratch: str | bool | None = None):
-    from tallgam.outputs.result import FitResult
-
-    if int(batch_rows) < 1:
-        raise DataError(f"batch_rows must be a positive integer, got {batch_rows!r}")
-    points = _grid_points(discretize)
-    policy = _scratch_policy(scratch) if points else None
-    callback = make_callback(progress)
-    source = open_source(data, threads=threads)
+def fit_model(model, data, options: RunOptions) -> FitState:
+    """Fit ``model`` (a :class:`tallgam.Model`) to ``data`` as ``options`` say: the
+    profile pass, term set-up, data passes until PIRLS converges, the dense stage."""
+    callback = make_callback(options.progress)
+    source = open_source(data, threads=options.threads)
     owned = source is not data
     old_threads = numba.get_num_threads()
-    if threads:
-        numba.set_num_threads(min(int(threads), numba.config.NUMBA_NUM_THREADS))
+    if options.threads:
+        numba.set_num_threads(min(options.threads, numba.config.NUMBA_NUM_THREADS))
     t0 = time.perf_counter()
     runner = None
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            if cluster is not None:  # imported only here: the local path never loads dask
+            if options.cluster is not None:  # imported only here: the local path never loads dask
                 from tallgam.passes.cluster import ClusterPasses
 
-                runner = ClusterPasses.open(cluster, data, source, callback, threads=threads)
+                runner = ClusterPasses.open(options.cluster, data, source, callback,
+                                            threads=options.threads,
+                                            min_rows=options.tuning.partition_min_rows)
             else:
-                runner = LocalPasses(source, callback, cache=policy)
-            if getattr(model.family, "grid", None):
-                fs = _profile_tweedie_power(model, source, int(batch_rows), callback, runner,
-                                            points)
+                policy = None
+                if options.bin_points is not None and options.scratch is not False:
+                    folder = options.scratch if isinstance(options.scratch, str) else None
+                    policy = ScratchPolicy(folder=folder)
+                runner = LocalPasses(source, callback, scratch_policy=policy)
+            setup = prepare(model, source, options, callback)
+            if model.family.profiled() is not None:
+                fs = _profile_family_parameter(setup, runner)
             else:
-                fs = _fit(model, source, int(batch_rows), callback, runner, points)
+                fs = _Run(setup, model.family, runner).iterate()
         for w in caught:
             if str(w.message) not in fs.notes:
                 fs.notes.append(str(w.message))
@@ -122,84 +124,33 @@ def fit_model(model: Model, data, *, batch_rows: int = 1_000_000, threads: int |
             runner.close()
         if owned:
             source.close()
-    return FitResult.from_state(fs)
-
-
-def _grid_points(discretize) -> int | None:
-    """discretize= as grid values per binned column (None: not discretized)."""
-    from tallgam.passes.binned import DEFAULT_POINTS, MIN_POINTS
-
-    if discretize is None or discretize is False:
-        return None
-    if discretize is True:
-        return DEFAULT_POINTS
-    if isinstance(discretize, (int, np.integer)) and int(discretize) >= MIN_POINTS:
-        return int(discretize)
-    raise SpecError(f"discretize takes False, True or a number of grid values of at least "
-                    f"{MIN_POINTS} for binned columns, got {discretize!r}")
-
-
-def _scratch_policy(scratch):
-    """scratch= as a :class:`~tallgam.data.scratch.ScratchPolicy` (None: no scratch copy)."""
-    import os
-
-    from tallgam.data.scratch import ScratchPolicy
-
-    if scratch is False:
-        return None
-    if scratch is None or scratch is True:
-        return ScratchPolicy()
-    folder = os.fspath(scratch)
-    if not os.path.isdir(folder):
-        raise SpecError(f"the scratch folder {folder!r} does not exist; create it, or pass "
-                        "scratch=None for the system's temporary folder")
-    return ScratchPolicy(folder=folder)
-
-
-def _profile_tweedie_power(model: Model, source: Source, batch_rows: int, callback,
-                           runner, points: int | None = None) -> FitState:
-    """Fit at every candidate Tweedie power, then at the maximum of a parabola through the
-    best candidate and its neighbours; keep the fit with the highest log-likelihood."""
-    from dataclasses import replace
-
-    grid = model.family.grid
-    fits: dict[float, FitState] = {}
-    for p in grid:
-        callback(Event("note", "profile", message=f"tweedie power {p:g}"))
-        fits[p] = _fit(replace(model, family=model.family.at_power(p)), source, batch_rows,
-                       callback, runner, points)
-    lls = np.array([fits[p].loglik for p in grid])
-    i = int(np.argmax(lls))
-    if 0 < i < len(grid) - 1:
-        x, y = np.array(grid[i - 1:i + 2]), lls[i - 1:i + 2]
-        a, b, _ = np.polyfit(x, y, 2)
-        if a < 0:
-            p_star = float(np.clip(-b / (2 * a), x[0], x[2]))
-            if min(abs(p_star - g) for g in grid) > 1e-3:
-                fits[p_star] = _fit(replace(model, family=model.family.at_power(p_star)),
-                                    source, batch_rows, callback, runner, points)
-    best = max(fits, key=lambda p: fits[p].loglik)
-    fs = fits[best]
-    fs.passes = sum(f.passes for f in fits.values())
-    table = sorted((float(p), float(f.loglik)) for p, f in fits.items())
-    fs.extra_statistics["power_profile"] = [list(t) for t in table]
-    fs.notes.append(
-        "tweedie power chosen by profile likelihood: "
-        + ", ".join(f"{p:.3g} → {ll:.6g}" for p, ll in table) + f"; kept {best:.4g}")
     return fs
 
 
-def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
-         points: int | None = None) -> FitState:
-    fam = model.family
+@dataclass
+class Setup:
+    """What a fit knows before its first data pass: the model's inputs, the profile, the
+    design (and its binned form), the run options."""
+
+    model: object
+    inputs: object
+    profile: DataProfile
+    design: Design
+    binned: object
+    dropped: int
+    options: RunOptions
+    callback: object
+
+
+def prepare(model, source: Source, options: RunOptions, callback) -> Setup:
+    """The profile pass (with NULL handling and checks) and the terms' bases."""
     inputs = model_inputs(model, source, model.terms)
     callback(Event("start", "profile"))
     profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where,
                           histograms=False)
     dropped = 0
     where = model.where
-    if model.missing == "drop" and any(
-            fp.nulls + fp.nonfinite for fp in profile.fields.values()):
+    if model.missing == "drop" and profile.missing():
         keep = complete_rows_condition(inputs.profile_fields)
         where = f"({model.where}) AND ({keep})" if model.where else keep
         rows_before = profile.rows
@@ -209,39 +160,93 @@ def _fit(model: Model, source: Source, batch_rows: int, callback, runner,
     inputs.where = where
     check_profile(profile, source, model)
     add_value_histograms(source, profile, inputs.profile_fields,
-                         inputs.select_expr(WC) if inputs.has_cweights else None, where)
+                         inputs.select_expr(WC) if inputs.has_cweights else None, where,
+                         "exposure" if model.exposure else "weights")
     callback(Event("end", "profile", rows=profile.rows))
     if dropped:
         warnings.warn(TallgamWarning(f"{dropped} row(s) with missing or non-finite values were "
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
-    discrete = None
-    if points is not None:
-        from tallgam.passes.binned import DiscreteDesign
+    binned = None
+    if options.bin_points is not None:
+        binned = BinnedDesign(design, profile, options.bin_points, options.tuning)
+    return Setup(model, inputs, profile, design, binned, dropped, options, callback)
 
-        discrete = DiscreteDesign(design, profile, points)
-    run = _Run(model, fam, runner, inputs, design, profile, batch_rows, callback, discrete)
-    fs = run.iterate(dropped)
-    if discrete is not None:
-        fs.notes.extend(discrete.notes())
+
+PROFILE_XTOL = 5e-4  # a profiled family parameter is found to this tolerance
+
+
+def _profile_family_parameter(setup: Setup, runner) -> FitState:
+    """The family parameter (e.g. the Tweedie power) that maximises the log-likelihood of
+    the fitted model: fits at the family's candidates, then a bounded one-dimensional
+    search (Brent's method) between the neighbours of the best candidate, each fit started
+    from the nearest one done. Its standard error comes from the curvature of the profile
+    log-likelihood at the maximum."""
+    from scipy.optimize import minimize_scalar
+
+    family = setup.model.family
+    spec = family.profiled()
+    fits: dict[float, FitState] = {}
+
+    def fit_at(value: float) -> FitState:
+        value = float(value)
+        if value not in fits:
+            setup.callback(Event("note", "profile", message=f"{spec.name} {value:.4g}"))
+            near = min(fits, key=lambda v: abs(v - value)) if fits else None
+            start = None if near is None else fits[near]
+            fits[value] = _Run(setup, family.at(value), runner, start=start).iterate()
+        return fits[value]
+
+    grid = sorted(spec.candidates)
+    lls = [fit_at(v).loglik for v in grid]
+    i = int(np.argmax(lls))
+    lo = grid[i - 1] if i > 0 else spec.lower
+    hi = grid[i + 1] if i < len(grid) - 1 else spec.upper
+    found = minimize_scalar(lambda v: -fit_at(v).loglik, bounds=(lo, hi), method="bounded",
+                            options={"xatol": PROFILE_XTOL})
+    best = max(fits, key=lambda v: fits[v].loglik)
+    se = _profile_standard_error(fits, best, fit_at, spec)
+    fs = fits[best]
+    fs.passes = sum(f.passes for f in fits.values())
+    table = sorted((float(p), float(f.loglik)) for p, f in fits.items())
+    fs.extra_statistics["family_profile"] = {
+        "parameter": spec.name, "value": float(best), "std_error": se,
+        "search_converged": bool(found.success), "points": [list(t) for t in table]}
+    fs.notes.append(
+        f"{family.name} {spec.name} chosen by profile likelihood: {best:.4f}"
+        + (f" (standard error {se:.3g})" if se is not None else "")
+        + f" over {len(fits)} fits")
     return fs
+
+
+def _profile_standard_error(fits: dict, best: float, fit_at, spec) -> float | None:
+    """1/√(−ℓ''(p̂)) from a parabola through the profile log-likelihood at p̂ ± h."""
+    h = 0.02
+    if not (spec.lower < best - h and best + h < spec.upper):
+        return None
+    y = np.array([fit_at(best - h).loglik, fits[best].loglik, fit_at(best + h).loglik])
+    curvature = (y[0] - 2.0 * y[1] + y[2]) / (h * h)
+    return float(1.0 / np.sqrt(-curvature)) if curvature < 0 else None
 
 
 class _Run:
     """The PIRLS iterations of one fit (state between data passes). ``runner`` carries
     out the passes: :class:`~tallgam.passes.run.LocalPasses` here, or a cluster runner."""
 
-    def __init__(self, model, fam, runner, inputs, design, profile, batch_rows, callback,
-                 discrete=None):
-        self.model, self.fam, self.link = model, fam, model.link
-        self.runner, self.inputs, self.design = runner, inputs, design
-        self.profile, self.batch_rows, self.callback = profile, batch_rows, callback
-        self.discrete = discrete
-        # gaussian with the identity link: one pass gives the exact normal equations
-        self.single_pass = fam.name == "gaussian" and model.link.name == "identity"
-        self.y_mean = profile["response"].mean
-        self.start_shift = _start_shift(model, profile)
+    def __init__(self, setup: Setup, family, runner, start: FitState | None = None):
+        model = setup.model
+        self.setup = setup
+        self.model, self.fam, self.link = model, family, model.link
+        self.runner, self.inputs, self.design = runner, setup.inputs, setup.design
+        self.profile, self.callback = setup.profile, setup.callback
+        self.batch_rows = setup.options.batch_rows
+        self.binned = setup.binned
+        self.start = start
+        # e.g. gaussian with the identity link: one pass gives the exact normal equations
+        self.single_pass = family.exact_with(model.link)
+        self.y_mean = setup.profile.role("response").mean
+        self.start_shift = _start_shift(family, model.link, setup.profile)
         self.null_beta0 = self.start_shift
         self.scale_est = 1.0
         self.passes = 0
@@ -252,8 +257,9 @@ class _Run:
                         link=self.link, beta=beta, beta_prev=beta_prev,
                         start_shift=self.start_shift, null_beta0=self.null_beta0,
                         y_mean=self.y_mean, scale_est=self.scale_est,
-                        batch_rows=self.batch_rows, discrete=self.discrete,
-                        more_passes=not self.single_pass)
+                        batch_rows=self.batch_rows, binned=self.binned,
+                        more_passes=not self.single_pass,
+                        fused=self.setup.options.tuning.fused_loops)
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
@@ -272,7 +278,7 @@ class _Run:
                                              self.profile.rows))
         return total
 
-    def iterate(self, dropped: int) -> FitState:
+    def iterate(self) -> FitState:
         """Data passes until the penalized deviance and the linear predictor settle.
 
         Every pass evaluates one iterate. A step is *worse* when it puts a mean outside
@@ -289,6 +295,10 @@ class _Run:
         beta = None            # the iterate this pass evaluates; None: the starting means
         accepted = None        # (beta, state, deviance, λ) of the last accepted iterate
         lam = rho = None
+        if self.start is not None and not exact:  # a warm start: the previous fit's iterate
+            beta = np.array(self.start.beta, dtype=np.float64, copy=True)
+            lam = np.array(self.start.solution.lam, dtype=np.float64, copy=True)
+            self.scale_est = self.start.scale
         halvings = 0
         converged = stuck = False
         nuisance_moved = False
@@ -298,7 +308,8 @@ class _Run:
             t_pass = time.perf_counter()
             state = self.data_pass(beta, accepted[0] if accepted else None)
             if constraints is None:
-                constraints = Constraints(design, state.colsum, model.criterion)
+                constraints = Constraints(design, state.colsum, model.criterion,
+                                          self.setup.options.tuning.eliminate_levels)
             dev = state.scalars["deviance"]
             rows = int(state.scalars["rows"])
             if beta is None:
@@ -346,6 +357,8 @@ class _Run:
             problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
             if last is None:
                 constraints.check_identifiable(problem)
+                if lam is not None:  # warm start: from the previous fit's smoothing
+                    rho = _rho_of(lam, problem, constraints)
             sol = select(problem, model.criterion, constraints.fixed, start=rho)
             if constraints.shapes:
                 sol = constraints.shapes.apply(sol, problem)
@@ -377,8 +390,11 @@ class _Run:
                    "and statistics are those of the reported iterate. Raise max_iterations or "
                    "check the model.")
             warnings.warn(ConvergenceWarning(msg), stacklevel=4)
-        return self._finish(state, beta, solution, constraints, converged, history, notes,
-                            dropped, exact)
+        fs = self._finish(state, beta, solution, constraints, converged, history, notes,
+                          self.setup.dropped, exact)
+        if self.binned is not None:
+            fs.notes.extend(self.binned.notes())
+        return fs
 
     def _update_nuisance(self, state: PassState) -> bool:
         """One Newton step for a family's estimated extra parameter; True while it moves."""
@@ -386,7 +402,7 @@ class _Run:
             return False
         old = self.fam
         new = old.with_nuisance(state.scalars["nuisance_score"], state.scalars["nuisance_info"])
-        if abs(np.log(new.theta / old.theta)) <= 1e-10:  # settled: freeze it exactly
+        if not old.nuisance_moved(new):  # settled: freeze it exactly
             return False
         self.fam = new
         return True
@@ -410,13 +426,8 @@ class _Run:
             scale = deviance / max(n - edf_total, 1.0)
         else:
             scale = sc["pearson"] / max(n - edf_total, 1.0)
-        if fam.name == "gaussian":
-            loglik = -0.5 * (deviance / scale + n * np.log(2 * np.pi * scale) - sc["log_weight"])
-        elif fam.scale_known:
-            loglik = sc["loglik"]
-        elif fam.loglik_in_pass:
-            loglik = _interpolate_loglik(sc, self.scale_est, scale)
-        else:
+        loglik = fam.final_loglik(sc, deviance, scale, self.scale_est, LOGLIK_STEP)
+        if loglik is None:
             loglik = self.loglik_pass(beta, scale)
         sc["deviance"] = deviance
         if exact:  # the pass ran at the starting values; the fit's residuals are the deviance
@@ -431,15 +442,6 @@ class _Run:
 
 
 ETA_TOLERANCE = 1e-6  # largest change of the linear predictor between the last two iterates
-
-
-def _interpolate_loglik(sc: dict, scale_pass: float, scale: float) -> float:
-    """The log-likelihood at ``scale`` from its values at three scales around the one the
-    pass used (quadratic in log φ; the final scale differs from the pass's by the
-    convergence tolerance, so the error is far below rounding of the sum)."""
-    t = np.log(scale / scale_pass) / LOGLIK_STEP
-    lo, mid, hi = sc["loglik_lo"], sc["loglik"], sc["loglik_hi"]
-    return float(mid + 0.5 * t * (hi - lo) + 0.5 * t * t * (hi - 2 * mid + lo))
 
 
 def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
@@ -457,9 +459,9 @@ def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
 
 
 def _rho_of(lam, problem, constraints) -> np.ndarray:
-    from tallgam.solve.smoothing import _relative_scale
+    from tallgam.solve.smoothing import relative_scale
 
-    base = _relative_scale(problem)
+    base = relative_scale(problem)
     return np.clip(np.log(np.maximum(lam, 1e-300) / base), -RHO_BOUND, RHO_BOUND)
 
 
@@ -488,18 +490,17 @@ def _null_step(state: PassState) -> float:
     return state.scalars["null_score"] / w if w > 0 else 0.0
 
 
-def _start_shift(model: Model, profile: DataProfile) -> float:
+def _start_shift(family, link, profile: DataProfile) -> float:
     """A constant near the mean of η − offset at the start, to centre the residuals."""
-    y = profile["response"].mean
-    fam, link = model.family, model.link
-    mu = fam.clip_mu(np.array([y if y is not None else 0.0]))
-    if fam.name == "binomial":
-        mu = np.clip(mu, 0.01, 0.99)
-    eta = float(link.link(mu)[0]) if np.all(np.isfinite(link.link(mu))) else 0.0
-    if "exposure" in profile.fields and link.name == "log":
-        eta -= np.log(max(profile["exposure"].mean, 1e-300))
-    if "offset" in profile.fields:
-        eta -= profile["offset"].mean
+    y = profile.role("response").mean
+    mu = np.array([family.start_mean(y if y is not None else 0.0)])
+    with np.errstate(all="ignore"):
+        eta = float(link.link(mu)[0])
+    if not np.isfinite(eta):
+        eta = 0.0
+    exposure, offset = profile.role("exposure"), profile.role("offset")
+    if exposure is not None and link.multiplicative:
+        eta -= np.log(max(exposure.mean, 1e-300))
+    if offset is not None:
+        eta -= offset.mean
     return float(eta) if np.isfinite(eta) else 0.0
-
-

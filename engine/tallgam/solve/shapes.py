@@ -1,51 +1,23 @@
-"""Shape constraints on splines: increasing, decreasing, convex, concave.
+"""Shape constraints (a monotone or convex spline) imposed in the dense stage.
 
-A cubic B-spline's derivative is a quadratic B-spline whose coefficients are scaled
-differences of the spline's coefficients (de Boor 1978), and its second derivative a
-linear B-spline with second divided differences; B-splines are non-negative, so
-f' ≥ 0 (or f'' ≥ 0) everywhere when those coefficients are ≥ 0. The shape is the linear
-inequality Cγ ≥ 0 on the term's free coefficients.
-
-It is imposed on the penalized working model by the asymmetric penalty of Bollaerts,
-Eilers & van Mechelen (2006): κ·Σ v_j (C γ)_j² with v_j = 1 where the constraint is broken,
-re-solved until the set of broken constraints settles. Here κ → ∞ is taken exactly (the
-set found is imposed as equalities, an H-metric projection of the unconstrained solution),
-so the fitted curve is monotone (convex) on any grid, not just approximately. The
-smoothing parameters are those chosen without the constraint; inference (covariance, EDF)
-is conditional on the active constraints. Everything acts on coefficients only, so it lives
-in the dense stage and costs no data pass.
+A term with a shape offers linear inequalities Cβ ≥ 0 on its raw coefficients
+(:meth:`tallgam.terms.base.Basis.shape_rows`). They are imposed on the penalized working
+model by the asymmetric penalty of Bollaerts, Eilers & van Mechelen (2006):
+κ·Σ v_j (C γ)_j² with v_j = 1 where the constraint is broken, re-solved until the set of
+broken constraints settles. Here κ → ∞ is taken exactly (the set found is imposed as
+equalities, an H-metric projection of the unconstrained solution), so the fitted curve keeps
+its shape on any grid, not just approximately. The smoothing parameters are those chosen
+without the constraint; inference (covariance, EDF) is conditional on the active
+constraints. Everything acts on coefficients only, so it costs no data pass.
 """
 
 from __future__ import annotations
 
 import numpy as np
-from scipy.interpolate import BSpline
 
 from tallgam.solve.smoothing import Solution, WorkingProblem
 
-SHAPES = ("increasing", "decreasing", "convex", "concave")
 MAX_ROUNDS = 200
-
-
-def derivative_rows(knots: np.ndarray, order: int) -> np.ndarray:
-    """D (m × k): the B-spline coefficients of f^(order) as D·β, for f = Σ β_j B_j."""
-    k = len(knots) - 4
-    rows = []
-    for j in range(k):
-        unit = np.zeros(k)
-        unit[j] = 1.0
-        rows.append(BSpline(knots, unit, 3).derivative(order).c[: k - order])
-    return np.array(rows).T
-
-
-def shape_rows(basis) -> np.ndarray:
-    """C_raw with C_raw β ≥ 0 ⇔ the basis's curve has its shape (sufficient condition)."""
-    shape = basis.spec.shape
-    order = 1 if shape in ("increasing", "decreasing") else 2
-    sign = 1.0 if shape in ("increasing", "convex") else -1.0
-    d = derivative_rows(basis.knots, order)
-    scale = np.max(np.abs(d), axis=1, keepdims=True)
-    return sign * d / np.where(scale > 0, scale, 1.0)
 
 
 class ShapeConstraints:
@@ -55,13 +27,14 @@ class ShapeConstraints:
         design = constraints.design
         self.rows: list[np.ndarray] = []
         for j, b in enumerate(design.bases):
-            if not getattr(b.spec, "shape", None):
+            rows = b.shape_rows()
+            if rows is None:
                 continue
             raw = design.slices[j]
             free = constraints.free_slices[j]
             z = constraints.Z[np.searchsorted(constraints.kept, np.arange(raw.start, raw.stop)),
                               free]
-            block = shape_rows(b) @ z
+            block = rows @ z
             c = np.zeros((block.shape[0], constraints.n_kept))
             c[:, free] = block
             self.rows.append(c)

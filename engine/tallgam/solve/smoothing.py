@@ -472,7 +472,7 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
     λ must be given. ``start`` is a starting log relative λ for all penalties (e.g. the
     previous PIRLS step's). Returns the :class:`Solution` at the optimum.
     """
-    base = _relative_scale(problem)
+    base = relative_scale(problem)
     free = np.array([f is None for f in fixed], dtype=bool)
     for j, f in enumerate(fixed):
         if f is not None:
@@ -583,7 +583,7 @@ def _newton_step(hess, grad, rho, max_step: float = 5.0):
     return step
 
 
-def _relative_scale(problem: WorkingProblem) -> np.ndarray:
+def relative_scale(problem: WorkingProblem) -> np.ndarray:
     """λ_k that make penalty k as large as the data term on its block (ρ = 0 start)."""
     out = []
     for blk in problem.blocks:

@@ -187,16 +187,6 @@ def periodic_fold(k: int) -> np.ndarray:
     return w
 
 
-def evaluate_periodic(knots: np.ndarray, period: float, x: np.ndarray
-                      ) -> tuple[np.ndarray, np.ndarray]:
-    """Like :func:`evaluate` for a periodic basis of k = len(knots) − 7 functions: x is
-    first wrapped into [τ₀, τ₀ + period). Returns ``first`` (before wrapping the column
-    index: columns are (first + a) mod k) and the four values."""
-    origin = knots[3]
-    xw = origin + np.mod(np.asarray(x, dtype=np.float64) - origin, period)
-    return evaluate(knots, xw)
-
-
 _NONE_I = np.empty(0, dtype=np.int32)
 _NONE_F = np.empty(0, dtype=np.float64)
 

@@ -1,4 +1,4 @@
-"""The discretized data passes and the scratch copy of coded rows give the fit of the plain
+"""The binned data passes and the scratch copy of coded rows give the fit of the plain
 streamed passes: exactly (to rounding) when every numeric input is whole-numbered, and
 within a measured tolerance when continuous inputs are binned. Synthetic data with a known
 truth (invented for these tests)."""
@@ -14,6 +14,7 @@ import pytest
 import tallgam as tg
 from tallgam.data.sources import Source
 from tallgam.errors import SpecError
+from tallgam.options import Tuning
 from tallgam.passes import binned as discrete
 
 
@@ -65,12 +66,12 @@ def assert_same_fit(a, b, df, rtol):
 
 
 @pytest.mark.parametrize("family", ["gaussian", "poisson"])
-def test_whole_number_inputs_give_the_undiscretized_fit(family):
+def test_whole_number_inputs_give_the_exact_pass_fit(family):
     # exact coding (code = value - minimum): only the order of summation differs
     df = whole_number_book()
     model = whole_number_model(family)
     plain = model.fit(df, batch_rows=7_000)
-    coded = model.fit(df, batch_rows=7_000, discretize=True)
+    coded = model.fit(df, batch_rows=7_000, binned=True)
     assert_same_fit(plain, coded, df, 1e-6)  # measured 1e-8 to 7e-8 (optimizer tolerance)
     assert any("exact" in n for n in coded.notes)
 
@@ -87,8 +88,7 @@ def test_every_pair_mode_gives_the_same_normal_equations(monkeypatch):
     model = whole_number_model("poisson")
     real = passes.working_pass
     seen_modes = set()
-    for limit in (discrete.CELL_LIMIT, 64, 1):
-        monkeypatch.setattr(discrete, "CELL_LIMIT", limit)
+    for limit in (Tuning().cell_limit, 64, 1):
         captured = {}
 
         def spy(source, plan, *args, _captured=captured, **kwargs):
@@ -96,12 +96,12 @@ def test_every_pair_mode_gives_the_same_normal_equations(monkeypatch):
                 rng = np.random.default_rng(3)
                 moved = replace(plan, beta_prev=None,
                                 beta=plan.beta + 0.01 * rng.standard_normal(plan.beta.shape))
-                _captured["state"] = (real(source, replace(moved, discrete=None)),
+                _captured["state"] = (real(source, replace(moved, binned=None)),
                                       real(source, moved))
-                _captured["modes"] = {p[0] for p in plan.discrete.pairs}
+                _captured["modes"] = {p[0] for p in plan.binned.pairs}
             return real(source, plan, *args, **kwargs)
         monkeypatch.setattr(passes, "working_pass", spy)
-        model.fit(df, discretize=True, scratch=False)
+        model.fit(df, binned=True, scratch=False, tuning=Tuning(cell_limit=limit))
         monkeypatch.setattr(passes, "working_pass", real)
         plain, coded = captured["state"]
         seen_modes |= captured["modes"]
@@ -128,7 +128,7 @@ def test_scratch_copy_gives_the_streamed_fit_and_is_removed(tmp_path, monkeypatc
         reads.append(1)
         return real(self, *args, **kwargs)
     monkeypatch.setattr(Source, "batches", counting)
-    streamed = model.fit(str(path), batch_rows=6_000, discretize=True, scratch=False)
+    streamed = model.fit(str(path), batch_rows=6_000, binned=True, scratch=False)
     streamed_reads = len(reads)
     reads.clear()
     folder = tmp_path / "scratch"
@@ -138,7 +138,7 @@ def test_scratch_copy_gives_the_streamed_fit_and_is_removed(tmp_path, monkeypatc
     def watch(event):
         if event.kind == "end" and event.task.startswith("pass"):
             seen.extend(os.listdir(folder))
-    cached = model.fit(str(path), batch_rows=6_000, discretize=True, scratch=str(folder),
+    cached = model.fit(str(path), batch_rows=6_000, binned=True, scratch=str(folder),
                        progress=watch)
     assert streamed_reads == streamed.passes and streamed.passes > 2
     assert len(reads) == 1                      # only the first pass read the data
@@ -156,7 +156,7 @@ def test_scratch_copy_is_removed_when_the_fit_fails(tmp_path):
     model = tg.Model(response="claims", family="poisson", exposure="exposure",
                      terms=[tg.spline("age")], max_iterations=2)
     with pytest.warns(tg.TallgamWarning):
-        model.fit(df, discretize=True, scratch=str(folder))
+        model.fit(df, binned=True, scratch=str(folder))
     assert os.listdir(folder) == []
 
 
@@ -172,7 +172,7 @@ def test_binned_continuous_inputs_stay_close_to_the_plain_fit():
     model = tg.Model(response="claims", family="poisson", exposure="exposure",
                      terms=[tg.spline("x"), tg.spline("z")])
     plain = model.fit(df)
-    coded = model.fit(df, discretize=True)
+    coded = model.fit(df, binned=True)
     grid = df.sample(2_000, random_state=1)
     p0, se0 = plain.predict(grid, output="link", se=True)
     p1 = coded.predict(grid, output="link")
@@ -183,14 +183,14 @@ def test_binned_continuous_inputs_stay_close_to_the_plain_fit():
 
 
 @pytest.mark.parametrize("bad", [5, "many", 2.5])
-def test_bad_discretize_values_are_refused(bad):
+def test_bad_binned_values_are_refused(bad):
     df = whole_number_book(1_000)
-    with pytest.raises(SpecError, match="discretize"):
+    with pytest.raises(SpecError, match="binned"):
         tg.Model(response="claims", family="poisson", exposure="exposure",
-                 terms=[tg.spline("age")]).fit(df, discretize=bad)
+                 terms=[tg.spline("age")]).fit(df, binned=bad)
 
 
-def test_spec_file_and_command_line_discretize(tmp_path):
+def test_spec_file_and_command_line_binned(tmp_path):
     # the spec key and the flag reach the fit: the saved model's notes name the coding
     from tallgam import cli
 
@@ -198,16 +198,16 @@ def test_spec_file_and_command_line_discretize(tmp_path):
     df.to_parquet(tmp_path / "book.parquet", index=False)
     spec = tmp_path / "model.toml"
     spec.write_text('data = "book.parquet"\nresponse = "claims"\nfamily = "poisson"\n'
-                    'exposure = "exposure"\ndiscretize = true\n\n'
+                    'exposure = "exposure"\nbinned = true\n\n'
                     '[[term]]\nkind = "spline"\ncolumn = "age"\n')
     assert cli.main(["fit", str(spec), "-o", str(tmp_path / "a.json"), "--quiet"]) == 0
     assert any("exact" in n for n in tg.load(tmp_path / "a.json").notes)
     assert cli.main(["fit", str(spec), "-o", str(tmp_path / "b.json"), "--quiet",
-                     "--discretize", "50", "--scratch", str(tmp_path)]) == 0
+                     "--binned", "50", "--scratch", str(tmp_path)]) == 0
     assert any("exact" in n for n in tg.load(tmp_path / "b.json").notes)
-    spec.write_text(spec.read_text().replace("discretize = true", "discretize = false"))
+    spec.write_text(spec.read_text().replace("binned = true", "binned = false"))
     assert cli.main(["fit", str(spec), "-o", str(tmp_path / "c.json"), "--quiet"]) == 0
-    assert not any("discretized" in n for n in tg.load(tmp_path / "c.json").notes)
+    assert not any("binned passes" in n for n in tg.load(tmp_path / "c.json").notes)
 
 
 def test_grid_codes_equal_a_binary_search():

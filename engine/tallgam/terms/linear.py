@@ -1,0 +1,84 @@
+"""The linear kind: a straight-line effect of a numeric column, centred and scaled
+internally (well-conditioned normal equations) and reported per unit of the column."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from tallgam.data.profile import DataProfile
+from tallgam.errors import DataError
+from tallgam.terms import sqltext
+from tallgam.terms.base import Basis, TermSpec, register
+
+
+@dataclass(frozen=True)
+class LinearSpec(TermSpec):
+    """See :func:`linear`."""
+
+    column: str
+
+    kind = "linear"
+
+    def build(self, profile: DataProfile) -> LinearBasis:
+        fp = profile.numeric(self.column)
+        if not fp.sd or fp.sd <= 0:
+            raise DataError(f"linear({self.column!r}): the column is constant "
+                            f"(every value is {fp.min:g}); drop the term")
+        return LinearBasis(self, float(fp.mean), float(fp.sd))
+
+
+def linear(column: str) -> LinearSpec:
+    """A straight-line effect of a numeric column.
+
+    Parameters
+    ----------
+    column : str
+        The numeric column; centred and scaled internally, reported per unit.
+
+    Returns
+    -------
+    LinearSpec
+    """
+    return LinearSpec(column)
+
+
+class LinearBasis(Basis):
+    width = 1
+
+    def __init__(self, spec: LinearSpec, centre: float, scale: float):
+        super().__init__(spec)
+        self.centre = centre
+        self.scale = scale
+
+    @property
+    def n_raw(self) -> int:
+        return 1
+
+    def encode(self, cols, idx, val, col0):
+        idx[:, 0] = col0
+        val[:, 0] = (cols[self.spec.column] - self.centre) / self.scale
+
+    def coefficient_names(self):
+        return [self.spec.column]
+
+    def coefficient_units(self):
+        return self.scale
+
+    def intercept_contrast(self):
+        return np.array([-self.centre / self.scale])
+
+    def sql(self, coef):
+        return (f"({sqltext.num(coef[0] / self.scale)} * ({sqltext.column(self.spec.column)} - "
+                f"{sqltext.num(self.centre)}))")
+
+    def to_dict(self):
+        return {"spec": self.spec.to_dict(), "centre": self.centre, "scale": self.scale}
+
+    @classmethod
+    def from_dict(cls, spec, d):
+        return cls(spec, float(d["centre"]), float(d["scale"]))
+
+
+register(LinearSpec, LinearBasis)
