@@ -56,6 +56,7 @@ def book(tmp_path_factory):
     return folder, df
 
 
+@pytest.mark.slow
 def test_fit_show_score_sql(book, tmp_path):
     folder, df = book
     model_path = tmp_path / "freq.json"
@@ -125,6 +126,7 @@ def test_scoring_larger_than_a_batch_equals_in_memory(book, tmp_path):
     np.testing.assert_allclose(got["prediction"].to_numpy(), fit.predict(df), rtol=1e-13)
 
 
+@pytest.mark.slow
 def test_killed_scoring_leaves_no_output(tmp_path):
     """A scoring run stopped midway (SIGTERM, then SIGKILL) leaves no output file."""
     rng = np.random.default_rng(5)
@@ -195,6 +197,7 @@ def test_model_file_error_exit_5(tmp_path):
     assert proc.returncode == 5 and "schema version 99" in proc.stderr
 
 
+@pytest.mark.slow
 def test_demo_small(tmp_path):
     proc = run("demo", "--rows", "30000", "--dir", str(tmp_path / "demo"), "--quiet")
     assert "claim-frequency" in proc.stdout and "qualified actuary" in proc.stdout

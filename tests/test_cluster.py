@@ -22,7 +22,8 @@ from tallgam.options import Tuning
 from tallgam.passes import cluster as tgc
 from tallgam.progress import Event
 
-pytestmark = pytest.mark.filterwarnings("ignore::tallgam.TallgamWarning")
+pytestmark = [pytest.mark.filterwarnings("ignore::tallgam.TallgamWarning"),
+              pytest.mark.slow]  # a real Dask LocalCluster
 
 RTOL = 1e-9
 N_FILES = 5

@@ -88,17 +88,6 @@ def _assert_same(fit, frame, expected):
     assert gap <= RTOL, f"relative gap {gap:.3g}"
 
 
-@pytest.mark.parametrize("batch_rows", [997, 10_000, N_ROWS])
-@pytest.mark.parametrize("threads", [1, 2])
-def test_batch_rows_and_threads(frame, reference, batch_rows, threads):
-    fit = MODEL.fit(frame, batch_rows=batch_rows, threads=threads)
-    _assert_same(fit, frame, reference[1])
-    # and so do the effective degrees of freedom (not λ itself: the power effect is a
-    # straight line, so its λ heads for the upper bound, where REML is flat to 1e-12)
-    for label, edf in reference[0].edf.items():
-        assert fit.edf[label] == pytest.approx(edf, rel=RTOL, abs=RTOL)
-
-
 SOURCES = {
     "parquet file": lambda f, df: f["single"],
     "glob": lambda f, df: f["glob"],

@@ -64,6 +64,7 @@ def test_truth_is_recovered():
                                                                                 "std_error"]
 
 
+@pytest.mark.slow
 def test_bands_cover_at_close_to_nominal_rate():
     # reference: Marra & Wood (2012), Scand. J. Statist. 39, 53-74: Bayesian pointwise bands
     # of penalized-spline smooths have close to nominal across-the-function coverage

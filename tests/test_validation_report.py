@@ -178,6 +178,7 @@ def test_actual_versus_expected_bands_add_up(fitted):
     assert val.gini > val.challenger_gini
 
 
+@pytest.mark.slow
 def test_report_opens_in_a_headless_browser(fitted, tmp_path):
     """The report loads in a real Chromium without console messages and every image in
     it decodes (the page marks itself data-images="ok:N" once all images have loaded)."""

@@ -87,27 +87,8 @@ def bin_points(binned) -> int | None:
 
 @dataclass(frozen=True)
 class RunOptions:
-    """How a job reads and computes, validated when made.
-
-    Parameters
-    ----------
-    batch_rows : int, default 1,000,000
-        Rows held in memory at once.
-    threads : int, optional
-        Cores used (default: all; on a cluster, the threads of each task, default 1).
-    progress : bool or callable, default False
-        True draws a bar on a terminal; a callable receives
-        :class:`tallgam.progress.Event` objects.
-    cluster : optional
-        A ``distributed.Client``, a scheduler address or a Dask cluster object.
-    binned : bool or int, default False
-        Binned data passes: False, True, or the grid values per continuous column.
-    scratch : str, bool or None
-        Binned fits: a folder for the scratch copy of the coded rows (None: the system's
-        temporary folder; False: no copy).
-    tuning : Tuning
-        Engine constants.
-    """
+    """How a job reads and computes, validated when made. The options are those of
+    :meth:`tallgam.Model.fit` (see there), plus ``tuning`` (:class:`Tuning`)."""
 
     batch_rows: int = DEFAULT_BATCH_ROWS
     threads: int | None = None

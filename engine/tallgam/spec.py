@@ -48,12 +48,6 @@ RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
     "binned": (bool, int), "scratch": (str, bool),
 }
-TERM_TYPES: dict[str, tuple] = {
-    "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
-    "knots": (str, list), "penalty": (str,), "smoothing": (int, float, list),
-    "base": (str, int), "per": (str,), "multiplier": (str,), "removable": (bool,),
-    "period": _NUMBER, "origin": _NUMBER, "neighbours": (str, dict), "shape": (str,),
-}
 
 
 @dataclass
@@ -81,7 +75,9 @@ def _check_type(where: str, key: str, value, types: tuple) -> None:
         raise SpecError(f"{where}: key {key!r} must be a {names}, got {value!r}")
 
 
-def parse_term(table: dict, index: int) -> object:
+def parse_term(table: dict, index: int, folder: str | None = None) -> object:
+    """One [[term]] table as a term spec; file options (e.g. a neighbour file) are found
+    like the data, from ``folder`` (the spec's)."""
     where = f"[[term]] number {index + 1}"
     if not isinstance(table, dict):
         raise SpecError(f"{where} must be a table")
@@ -94,12 +90,16 @@ def parse_term(table: dict, index: int) -> object:
         if key not in allowed:
             raise SpecError(f"{where} ({kind}): unknown key {key!r}{nearest(key, allowed)}; "
                             f"valid keys are {', '.join(sorted(allowed))}")
-        if key in TERM_TYPES:
-            _check_type(where, key, value, TERM_TYPES[key])
+        types = spec_cls.option_types().get(key)
+        if types:
+            _check_type(where, key, value, types)
     for needed in spec_cls.required():
         if needed not in table:
             raise SpecError(f"{where} ({kind}) needs {needed!r}")
     args = {k: v for k, v in table.items() if k != "kind"}
+    for key in spec_cls.file_options:
+        if isinstance(args.get(key), str) and folder is not None:
+            args[key] = _resolve(args[key], folder)
     try:
         return spec_cls.from_dict(args)
     except TypeError as exc:
@@ -127,10 +127,7 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
     if not isinstance(terms_raw, list):
         raise SpecError(f"{label}: terms are written as [[term]] tables")
     base = os.path.dirname(os.path.abspath(path)) if path else os.getcwd()
-    for t in terms_raw:  # a neighbour file is found like the data: from the spec's folder
-        if isinstance(t, dict) and isinstance(t.get("neighbours"), str):
-            t["neighbours"] = _resolve(t["neighbours"], base)
-    terms = [parse_term(t, i) for i, t in enumerate(terms_raw)]
+    terms = [parse_term(t, i, base) for i, t in enumerate(terms_raw)]
     model_args = {k: v for k, v in raw.items() if k in MODEL_KEYS}
     fam = model_args.get("family")
     if isinstance(fam, dict):

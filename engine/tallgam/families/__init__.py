@@ -30,6 +30,11 @@ def register(cls: type[Family]) -> type[Family]:
     return cls
 
 
+def unregister(name: str) -> None:
+    """Forget a registered family (e.g. one a test defined)."""
+    FAMILIES.pop(name, None)
+
+
 for _cls in (Gaussian, Poisson, Binomial, Gamma, InverseGaussian, Tweedie, NegativeBinomial):
     register(_cls)
 
@@ -63,4 +68,4 @@ def resolve(family: str | Family, link: str | Link | None) -> tuple[Family, Link
 
 __all__ = ["FAMILIES", "Binomial", "Family", "Gamma", "Gaussian", "InverseGaussian", "Link",
            "NegativeBinomial", "Poisson", "Profiled", "Tweedie", "family_from_dict",
-           "get_family", "get_link", "register", "resolve"]
+           "get_family", "get_link", "register", "resolve", "unregister"]

@@ -16,6 +16,7 @@ from tallgam.terms.base import (
     register,
     spec_from_dict,
     term_matrix,
+    unregister,
 )
 from tallgam.terms.cyclic import CyclicBasis, CyclicSpec, cyclic
 from tallgam.terms.levels import (
@@ -37,5 +38,5 @@ __all__ = [
     "RandomEffectBasis", "RandomEffectSpec", "SplineBasis", "SplineSpec", "SurfaceBasis",
     "SurfaceSpec", "TermSpec", "adjacency", "basis_from_dict", "categorical", "cyclic",
     "kinds", "linear", "random_effect", "register", "spec_from_dict", "spline", "surface",
-    "term_matrix",
+    "term_matrix", "unregister",
 ]

@@ -29,6 +29,8 @@ class AdjacencySpec(TermSpec):
     smoothing: float | None = None
 
     kind = "adjacency"
+    file_options = ("neighbours",)
+    extra_option_types = {"neighbours": (str, dict)}
 
     def __post_init__(self):
         if self.neighbours is None:

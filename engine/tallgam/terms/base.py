@@ -22,6 +22,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import MISSING, asdict, dataclass, fields
+from typing import ClassVar
 
 import numpy as np
 import pyarrow as pa
@@ -32,6 +33,11 @@ from tallgam.errors import DataError, ModelFileError, SpecError, nearest
 from tallgam.terms import sqltext
 
 GRID_POINTS = 101  # input values at which a numeric term is tabulated and drawn
+RENAMED_OPTIONS = {"select": "removable"}  # older model files' option names
+OPTION_TYPES: dict[str, tuple] = {  # spec-file value types of options kinds share
+    "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
+    "knots": (str, list), "smoothing": (int, float, list), "removable": (bool,),
+}
 
 
 # ---------------------------------------------------------------------------------------
@@ -44,6 +50,9 @@ class TermSpec:
 
     kind = "term"
     removable = False  # an extra penalty lets the criterion remove the term (see spline)
+    file_options: ClassVar[tuple[str, ...]] = ()  # options naming a file (found from a
+    #                                              spec file's folder)
+    extra_option_types: ClassVar[dict[str, tuple]] = {}  # a kind's own spec-file keys
 
     @property
     def label(self) -> str:
@@ -74,6 +83,11 @@ class TermSpec:
         return tuple(f.name for f in fields(cls))
 
     @classmethod
+    def option_types(cls) -> dict[str, tuple]:
+        """Accepted spec-file value types per option (checked before the constructor)."""
+        return {**OPTION_TYPES, **cls.extra_option_types}
+
+    @classmethod
     def required(cls) -> tuple[str, ...]:
         """The options without a default."""
         return tuple(f.name for f in fields(cls)
@@ -87,8 +101,10 @@ class TermSpec:
 
     @classmethod
     def from_dict(cls, d: dict) -> TermSpec:
-        """The spec from :meth:`to_dict` (lists back to tuples where the spec takes them)."""
-        args = {k: (tuple(v) if isinstance(v, list) else v) for k, v in d.items()}
+        """The spec from :meth:`to_dict` (lists back to tuples where the spec takes them;
+        options of older model files under their new names)."""
+        args = {RENAMED_OPTIONS.get(k, k) if RENAMED_OPTIONS.get(k) in cls.options() else k:
+                (tuple(v) if isinstance(v, list) else v) for k, v in d.items()}
         return cls(**args)
 
 
@@ -317,6 +333,13 @@ def register(spec_cls: type[TermSpec], basis_cls: type[Basis]) -> None:
     if not isinstance(kind, str) or not kind or kind == "term":
         raise SpecError(f"a term spec class needs a 'kind' name, got {kind!r}")
     _KINDS[kind] = (spec_cls, basis_cls)
+
+
+def unregister(kind: str) -> None:
+    """Forget a registered kind (e.g. one a test defined)."""
+    if kind == "intercept":
+        raise SpecError("the intercept cannot be unregistered")
+    _KINDS.pop(kind, None)
 
 
 def kinds() -> dict[str, type[TermSpec]]:

@@ -27,6 +27,7 @@ class CyclicSpec(TermSpec):
     smoothing: float | None = None
 
     kind = "cyclic"
+    extra_option_types = {"period": (int, float), "origin": (int, float)}
 
     def __post_init__(self):
         where = f"cyclic({self.column!r})"

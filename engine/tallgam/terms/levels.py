@@ -69,6 +69,7 @@ class CategoricalSpec(TermSpec):
     base: str | None = None
 
     kind = "categorical"
+    extra_option_types = {"base": (str, int)}
 
     def __post_init__(self):
         if self.base is not None:

@@ -55,6 +55,8 @@ class SplineSpec(TermSpec):
     shape: str | None = None
 
     kind = "spline"
+    extra_option_types = {"penalty": (str,), "per": (str,), "multiplier": (str,),
+                          "shape": (str,)}
 
     def __post_init__(self):
         where = f"spline({self.column!r})"
@@ -101,13 +103,6 @@ class SplineSpec(TermSpec):
         if self.per and not any(t.input_kinds() == {self.per: "levels"} for t in terms):
             raise SpecError(f"{self.label} needs the level means too: add "
                             f"tg.categorical({self.per!r}) to the terms")
-
-    @classmethod
-    def from_dict(cls, d):
-        d = dict(d)
-        if "select" in d:  # model files before the option was renamed
-            d["removable"] = d.pop("select")
-        return super().from_dict(d)
 
     def build(self, profile: DataProfile) -> SplineBasis:
         knots = margin_knots(profile, self.column, self.size, self.knots, self.label)

@@ -64,13 +64,6 @@ class SurfaceSpec(TermSpec):
     def input_kinds(self):
         return dict.fromkeys(self.columns, "numeric")
 
-    @classmethod
-    def from_dict(cls, d):
-        d = dict(d)
-        if "select" in d:  # model files before the option was renamed
-            d["removable"] = d.pop("select")
-        return super().from_dict(d)
-
     def build(self, profile: DataProfile) -> SurfaceBasis:
         margins = [margin_knots(profile, c, s, self.knots, self.label)
                    for c, s in zip(self.columns, self.size)]
