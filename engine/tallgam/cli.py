@@ -3,7 +3,8 @@
 Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
 column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
 file); 4 the fit did not converge (the model file is still written, marked so);
-5 model-file error. Messages go to stderr and say what to do.
+5 model-file error; 8 ``check --alert``: a stability index reached the alert level.
+Messages go to stderr and say what to do.
 """
 
 from __future__ import annotations
@@ -24,6 +25,7 @@ from tallgam.errors import (
 from tallgam.version import __version__
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_DATA, EXIT_NOT_CONVERGED, EXIT_MODEL_FILE = 0, 1, 2, 3, 4, 5
+EXIT_DRIFT = 8  # `tallgam check --alert`: a stability index reached the alert level
 
 
 def _err(msg: str) -> None:
@@ -148,6 +150,24 @@ def cmd_validate(args) -> int:
     return EXIT_OK
 
 
+def cmd_check(args) -> int:
+    from tallgam.model import load
+
+    fit = load(args.model)
+    check = fit.check(args.data, where=args.where)
+    print(check.summary())
+    if args.output:
+        from tallgam.outputs.modelfile import atomic_write_text
+
+        atomic_write_text(args.output, check.to_json() + "\n")
+        print(f"check written to {args.output}", file=sys.stderr)
+    if args.alert is not None and check.worst_psi >= args.alert:
+        _err(f"a stability index reached {check.worst_psi:.3f} (alert level {args.alert:g}): "
+             f"{', '.join(check.flagged(args.alert))}")
+        return EXIT_DRIFT
+    return EXIT_OK
+
+
 def cmd_report(args) -> int:
     from tallgam.model import load
     from tallgam.outputs.report import write_report
@@ -184,7 +204,8 @@ def build_parser() -> argparse.ArgumentParser:
         prog="tallgam",
         description="Generalized additive models fitted to data larger than memory.",
         epilog="Exit codes: 0 ok, 1 unexpected failure, 2 usage/spec error, 3 data error, "
-               "4 fit did not converge, 5 model-file error.")
+               "4 fit did not converge, 5 model-file error, 8 check found a stability index at "
+               "the alert level.")
     p.add_argument("--version", action="version", version=f"tallgam {__version__}")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
@@ -262,6 +283,17 @@ def build_parser() -> argparse.ArgumentParser:
     v.add_argument("--batch-rows", type=int, default=1_000_000)
     common(v)
     v.set_defaults(func=cmd_validate)
+
+    k = sub.add_parser("check", help="new data against a model's training profile: range, "
+                       "unseen levels, population stability index")
+    k.add_argument("model", help="the model file (JSON)")
+    k.add_argument("data", help="data to check: file, glob or directory")
+    k.add_argument("--where", help="SQL filter on the data (e.g. \"policy_year = 2025\")")
+    k.add_argument("--alert", type=float, default=None, metavar="PSI",
+                   help=f"exit with code {EXIT_DRIFT} when a stability index reaches PSI (0.25 is the "
+                        "usual alert level, 0.1 the watch level)")
+    k.add_argument("-o", "--output", help="write the check as JSON to this file")
+    k.set_defaults(func=cmd_check)
 
     r = sub.add_parser("report", help="a self-contained HTML report of a model")
     r.add_argument("model")

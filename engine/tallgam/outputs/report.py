@@ -168,7 +168,7 @@ def _profile_table(fit) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def html_report(fit, validation=None, *, title: str | None = None) -> str:
+def html_report(fit, validation=None, *, title: str | None = None, check=None) -> str:
     """One self-contained HTML page: summary, every term's figure and table, the data
     profile, hold-out validation (if given) and the cautions. Images are embedded."""
     from tallgam.outputs import plots
@@ -225,6 +225,9 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
             parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, column)),
                               f"actual versus expected by {column}"))
             parts.append(_html_table(table))
+    if check is not None:
+        parts.append('<h3 id="check">The hold-out against the training data</h3>')
+        parts.append(f"<pre>{_esc(check.summary())}</pre>")
     parts.append('<h2 id="data">Training data</h2>')
     parts.append(f"<p>{fit.profile.rows:,} rows"
                  + (f", filter <code>{_esc(fit.model.where)}</code>" if fit.model.where else "")
@@ -243,7 +246,9 @@ def write_report(fit, path, *, data=None, against=None, title: str | None = None
     """Validate on ``data`` (if given) and write the HTML report atomically; returns path."""
     from tallgam.outputs.modelfile import atomic_write_text
 
-    validation = fit.validate(data, against=against, progress=progress) if data is not None \
-        else None
-    atomic_write_text(path, html_report(fit, validation, title=title))
+    validation = check = None
+    if data is not None:
+        validation = fit.validate(data, against=against, progress=progress)
+        check = fit.check(data)
+    atomic_write_text(path, html_report(fit, validation, title=title, check=check))
     return str(path)

@@ -324,6 +324,15 @@ class FitResult:
         return validate(self, data, against=against, batch_rows=batch_rows, progress=progress,
                         tuning=tuning)
 
+    def check(self, data, *, where: str | None = None):
+        """New data against the training profile: rows outside the training range,
+        unseen levels, missing values and the population stability index per input (see
+        :mod:`tallgam.outputs.datacheck`). Returns a
+        :class:`~tallgam.outputs.datacheck.DataCheck`."""
+        from tallgam.outputs.datacheck import check_data
+
+        return check_data(self, data, where=where)
+
     # ------------------------------------------------------------------ output
     def summary(self) -> str:
         from tallgam.outputs.report import summary_text
