@@ -290,8 +290,8 @@ def build_parser() -> argparse.ArgumentParser:
     k.add_argument("data", help="data to check: file, glob or directory")
     k.add_argument("--where", help="SQL filter on the data (e.g. \"policy_year = 2025\")")
     k.add_argument("--alert", type=float, default=None, metavar="PSI",
-                   help=f"exit with code {EXIT_DRIFT} when a stability index reaches PSI (0.25 is the "
-                        "usual alert level, 0.1 the watch level)")
+                   help=f"exit with code {EXIT_DRIFT} when a stability index reaches PSI "
+                        "(0.25 is the usual alert level, 0.1 the watch level)")
     k.add_argument("-o", "--output", help="write the check as JSON to this file")
     k.set_defaults(func=cmd_check)
 

@@ -142,9 +142,11 @@ def check_data(fit, data, *, where: str | None = None) -> DataCheck:
                 if not prof.distinct:
                     continue
                 edges = _edges(prof.values, prof.rows)
-                inside = " + ".join(f"CAST({col} >= {float(e)!r} AS INTEGER)" for e in edges) or "0"
+                inside = " + ".join(f"CAST({col} >= {float(e)!r} AS INTEGER)"
+                                    for e in edges) or "0"
+                lo, hi = float(prof.min), float(prof.max)
                 exprs.append(f"CASE WHEN {col} IS NULL OR NOT isfinite({col}) THEN {MISSING} "
-                             f"WHEN {col} < {float(prof.min)!r} THEN {BELOW} WHEN {col} > {float(prof.max)!r} "
+                             f"WHEN {col} < {lo!r} THEN {BELOW} WHEN {col} > {hi!r} "
                              f"THEN {ABOVE} ELSE {inside} END AS k{i}")
                 plans.append((c, prof, edges, f"k{i}"))
             else:
