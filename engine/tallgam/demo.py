@@ -174,9 +174,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     """Write the book; fit frequency (and a banded challenger) and severity on 2021–2023;
     save the models; write relativity tables; validate on 2024 into HTML reports; score
     the whole book."""
-    import duckdb
-
     import tallgam as tg
+    from tallgam.data.sources import connect
 
     folder = os.fspath(folder)
     book_dir = os.path.join(folder, "book")
@@ -208,7 +207,7 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     scored = os.path.join(folder, "scored_frequency.parquet")
     echo(f"scoring the whole book with the frequency model into {scored}")
     freq.score(glob, scored, keep=["policy_id", "claim_count"], progress=progress)
-    con = duckdb.connect()  # one aggregate over the scored file: no join, bounded memory
+    con = connect()  # one aggregate over the scored file: no join, bounded memory
     actual, expected = con.execute(
         "SELECT sum(claim_count), sum(prediction) FROM read_parquet(?)", [scored]).fetchall()[0]
     con.close()

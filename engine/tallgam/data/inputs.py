@@ -7,6 +7,7 @@ list made here, so a column is cast and quoted the same way everywhere.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 from tallgam.data.profile import DataProfile, Field, Rule
@@ -15,6 +16,38 @@ from tallgam.errors import ColumnNotFound, DataError
 from tallgam.model import Model
 
 Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
+
+#: whole numbers below this (2**53) are exact in a DOUBLE, so their key is the integer's text
+_EXACT_WHOLE = 9007199254740992
+_LEGACY_WHOLE = re.compile(r"-?\d+\.0")
+
+
+def level_key(expr: str) -> str:
+    """SQL for the key (text) of a level value of ``expr``, whatever the type it is stored in.
+
+    Numbers stored as floating point or decimals get the key an integer column gives: 3.0
+    (DOUBLE), 3 (INTEGER) and 3.00 (DECIMAL) are all ``'3'``; other numbers their shortest
+    text (``'2.5'``); NaN and ±inf are missing (NULL), so the NULL policy applies to them
+    rather than a level called 'nan'. Text, integers, booleans and dates keep their own text
+    (codes such as '007' stay apart from '7'). The same expression serves fitting, scoring,
+    validation and the SQL export, so a model fitted from one storage scores another."""
+    text = f"CAST({expr} AS VARCHAR)"
+    d = f"TRY_CAST({text} AS DOUBLE)"
+    number = (f"CASE WHEN NOT isfinite({d}) THEN NULL WHEN {d} = trunc({d}) AND abs({d}) < "
+              f"{_EXACT_WHOLE} THEN CAST(CAST({d} AS BIGINT) AS VARCHAR) "
+              f"ELSE CAST({d} AS VARCHAR) END")
+    return (f"(CASE WHEN typeof({expr}) IN ('FLOAT', 'DOUBLE') OR typeof({expr}) LIKE "
+            f"'DECIMAL%' THEN {number} ELSE {text} END)")
+
+
+def legacy_level_key(label: str) -> str:
+    """The key :func:`level_key` gives today for a level label of an older model file, in
+    which a whole number read from a floating-point column was written '3.0'."""
+    if _LEGACY_WHOLE.fullmatch(label):
+        whole = label[:-2]
+        return "0" if whole == "-0" else whole
+    return label
+
 
 _NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT",
                   "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL",
@@ -116,13 +149,14 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
     for spec in design_specs:
         for f in spec.profile_fields():
             if f.key not in seen:
-                seen[f.key] = Field(f.key, f.expr, f.kind, f.histogram)
+                expr = level_key(f.expr) if f.kind == "levels" else f.expr
+                seen[f.key] = Field(f.key, expr, f.kind, f.histogram)
                 fields_.append(seen[f.key])
             else:  # a column several terms use: profile it once, with a histogram if any asks
                 seen[f.key].histogram |= f.histogram
     for c, kind in columns.items():
-        cast = "VARCHAR" if kind == "levels" else "DOUBLE"
-        select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
+        value = level_key(quote(c)) if kind == "levels" else f"CAST({quote(c)} AS DOUBLE)"
+        select.append(f"{value} AS {quote(c)}")
     return Inputs(select=select, where=model.where, level_names={
         c for c, k in columns.items() if k == "levels"}, has_weights=W in exprs,
         has_offset=bool(parts), has_cweights=cw is not None and not for_prediction,
@@ -155,7 +189,8 @@ def check_profile(profile: DataProfile, source: Source, model: Model) -> None:
         n_bad = fp.nulls + fp.nonfinite
         if n_bad:
             name = key.split(":", 1)[-1]
-            what = f"{fp.nulls} NULL" + (f", {fp.nonfinite} NaN/inf" if fp.nonfinite else "")
+            what = (f"{fp.nulls} NULL" + (f", {fp.nonfinite} NaN/inf" if fp.nonfinite else "")
+                    if fp.kind == "numeric" else f"{fp.nulls} NULL/NaN")
             bad.append(f"{name!r}: {what}")
     if bad:
         raise DataError(

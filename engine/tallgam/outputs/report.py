@@ -242,10 +242,12 @@ def html_report(fit, validation=None, *, title: str | None = None) -> str:
 
 def write_report(fit, path, *, data=None, against=None, title: str | None = None,
                  progress=False) -> str:
-    """Validate on ``data`` (if given) and write the HTML report atomically; returns path."""
-    from tallgam.outputs.modelfile import atomic_write_text
+    """Validate on ``data`` (if given) and write the HTML report atomically; returns path.
+    The output path is checked first, so a bad one fails before the validation pass."""
+    from tallgam.atomic import check_target, write_text
 
+    check_target(path)
     validation = fit.validate(data, against=against, progress=progress) if data is not None \
         else None
-    atomic_write_text(path, html_report(fit, validation, title=title))
+    write_text(path, html_report(fit, validation, title=title))
     return str(path)

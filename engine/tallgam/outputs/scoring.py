@@ -17,9 +17,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from tallgam.data.inputs import O, model_inputs
+from tallgam.data.inputs import O, legacy_level_key, model_inputs
 from tallgam.data.sources import Source, quote
-from tallgam.errors import DataError, SpecError, TallgamWarning
+from tallgam.errors import DataError, SpecError, TallgamWarning, shorten
 from tallgam.passes import kernels
 from tallgam.passes.design import Design, batch_columns
 
@@ -66,6 +66,14 @@ class Scorer:
                                             for k in keep] + [
             f"{sql} AS {quote('__keep_' + name)}" for name, sql in extra.items()]
         self.report = ScoreReport()
+        # older model files keep whole numbers of floating-point columns as '3.0'; the data's
+        # keys ('3') are given the model's labels (see inputs.level_key)
+        self.relabel: dict[str, dict[str, str]] = {}
+        for b in self.design.bases:
+            for c, levels in b.level_sets().items():
+                old = {legacy_level_key(lev): lev for lev in levels if legacy_level_key(lev) != lev}
+                if old:
+                    self.relabel.setdefault(c, {}).update(old)
         beta = fit.coefficients_raw
         self.beta_d = np.ascontiguousarray(beta[:self.design.pd])
         self.beta_l = np.ascontiguousarray(beta[self.design.pd:])
@@ -81,6 +89,8 @@ class Scorer:
                                          batch_rows):
             cols = batch_columns(batch.select(range(len(self.inputs.select))),
                                  self.inputs.level_names)
+            for c, labels in self.relabel.items():
+                cols[c] = _relabel(cols[c], labels)
             self._check(cols, batch.num_rows)
             n = batch.num_rows
             eta = cols[O].copy() if self.inputs.has_offset else np.zeros(n)
@@ -141,18 +151,31 @@ class Scorer:
                         self.report.clamped[c] += outside
             for c, levels in b.level_sets().items():
                 arr = cols[c]
+                if arr.null_count:  # NULL is no level, so not an unseen one either
+                    raise DataError(f"column {c!r} has {arr.null_count} NULL/NaN value(s) in a "
+                                    f"batch of {n} rows to score; a missing value is not a level"
+                                    " (unseen='base' does not apply): fill or filter them first")
                 missing = _unknown(arr, levels)
                 if missing.any():
                     if self.unseen == "error":
                         ex = pc.unique(arr.filter(pa.array(missing))).to_pylist()[:5]
                         raise DataError(
                             f"{int(missing.sum())} row(s) in a batch of {n} have levels of "
-                            f"{c!r} not seen in training (e.g. {ex}); pass unseen='base' to "
-                            "give them the base level's effect (zero)")
+                            f"{c!r} not seen in training (e.g. "
+                            f"{', '.join(shorten(v) for v in ex)}); pass unseen='base' to give "
+                            "them the base level's effect (zero)")
                     self.report.unseen[c] += int(missing.sum())
         if O in cols and not np.all(np.isfinite(cols[O])):
             raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
                             "rows of the data to score")
+
+
+def _relabel(arr, labels: dict[str, str]):
+    """``arr`` (Arrow strings) with each value found in ``labels`` replaced by its label."""
+    arr = arr.cast(pa.string())
+    pos = pc.index_in(arr, value_set=pa.array(list(labels), pa.string()))
+    new = pa.array(list(labels.values()), pa.string()).take(pos)
+    return pc.if_else(pc.is_valid(pos), new, arr)
 
 
 def _unknown(arr, levels: list[str]) -> np.ndarray:
@@ -171,34 +194,25 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     term. The file appears only when complete: rows go to a temporary file in the same
     folder, renamed at the end; an error or a kill leaves no output behind.
     """
-    import os
-    import tempfile
-
+    from tallgam.atomic import check_target, replacing
     from tallgam.data.sources import open_source
     from tallgam.progress import Event, make_callback
 
     callback = make_callback(progress)
-    out = os.fspath(output_path)
-    folder = os.path.dirname(os.path.abspath(out))
-    if not os.path.isdir(folder):
-        raise DataError(f"the output folder {folder!r} does not exist")
+    check_target(output_path)   # a bad output path fails before any row is read
     source = open_source(data)
     owned = source is not data
-    fd, tmp = tempfile.mkstemp(prefix=".tallgam-score-", suffix=".parquet.tmp", dir=folder)
-    os.close(fd)
     try:
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
         callback(Event("start", "scoring"))
 
         def advance(done: int) -> None:
             callback(Event("advance", "scoring", rows=done))
-        done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
-                            on_rows=advance)
-        os.replace(tmp, out)
+        with replacing(output_path, "score") as tmp:
+            done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
+                                on_rows=advance)
         callback(Event("end", "scoring", rows=done))
     finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
         if owned:
             source.close()
     scorer.report.warn()
@@ -269,28 +283,26 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
     import os
     import re
     import shutil
-    import tempfile
-    import uuid
 
     import pyarrow.parquet as pq
 
+    from tallgam.atomic import check_folder, install_folder, new_folder
     from tallgam.data.sources import open_source
+    from tallgam.errors import OutputError
     from tallgam.passes.cluster import ClusterSession, partitions_of, score_task
     from tallgam.progress import Event, make_callback
 
     callback = make_callback(progress)
     out = os.path.abspath(os.fspath(output_dir))
-    folder = os.path.dirname(out)
-    if not os.path.isdir(folder):
-        raise DataError(f"the output folder {folder!r} does not exist")
-    if os.path.isfile(out):
-        raise DataError(f"{out!r} is a file; scoring on a cluster writes a directory of part "
-                        "files: give a directory name")
+    folder = check_folder(os.path.dirname(out))
+    if os.path.lexists(out) and not os.path.isdir(out):
+        raise OutputError(f"{out!r} is a file; scoring on a cluster writes a folder of part "
+                          "files: give a folder name")
     if os.path.isdir(out):
         other = [e for e in sorted(os.listdir(out)) if not re.fullmatch(_PART_PATTERN, e)]
         if other:
-            raise DataError(f"the output directory {out!r} exists and holds other files than "
-                            f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
+            raise OutputError(f"the output folder {out!r} exists and holds other files than "
+                              f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
     source = open_source(data)
     owned = source is not data
     session = tmp = None
@@ -299,10 +311,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
         parts = partitions_of(data, source)
         session = ClusterSession(cluster)
-        tmp = tempfile.mkdtemp(prefix=".tallgam-score-", dir=folder)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)  # workers may run as another user
+        tmp = new_folder(folder, "score")  # mode 0777 less the umask: workers may be others
         session.check(sorted({f for p in parts for f in p.files}), [tmp])
         options = {"keep": tuple(keep), "terms": terms, "se": se, "with_offset": with_offset,
                    "unseen": unseen, "batch_rows": int(batch_rows)}
@@ -329,17 +338,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
             names = list(keep) + ["prediction", "link"]
             pq.write_table(pa.table({n: pa.array([], pa.float64()) for n in names}),
                            os.path.join(tmp, PART_NAME.format(0)))
-        if os.path.isdir(out):
-            old = os.path.join(folder, f".tallgam-old-{uuid.uuid4().hex[:10]}")
-            os.rename(out, old)
-            try:
-                os.rename(tmp, out)
-            except BaseException:
-                os.rename(old, out)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out)
+        install_folder(tmp, out)
         tmp = None
         callback(Event("end", "scoring", rows=done[0]))
     finally:

@@ -15,6 +15,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.interpolate import BSpline, PPoly
 
+from tallgam.data.inputs import legacy_level_key, level_key
 from tallgam.data.sources import quote
 from tallgam.errors import SpecError
 from tallgam.terms import (
@@ -63,9 +64,10 @@ def _clamped(column: str, lo: float, hi: float) -> str:
 
 
 def _levels_case(column: str, labels: list[str], values: list[str], otherwise: str) -> str:
-    col = f"CAST({quote(column)} AS VARCHAR)"
-    whens = " ".join(f"WHEN '{lev.replace(chr(39), chr(39) * 2)}' THEN {v}"
-                     for lev, v in zip(labels, values))
+    col = level_key(quote(column))
+    keys = [legacy_level_key(lev) for lev in labels]
+    whens = " ".join(f"WHEN '{key.replace(chr(39), chr(39) * 2)}' THEN {v}"
+                     for key, v in zip(keys, values))
     return f"(CASE {col} {whens} ELSE {otherwise} END)"
 
 

@@ -27,7 +27,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from tallgam.data.sources import Source, _expand_paths, _file_kind, quote
+from tallgam.atomic import output_error, owned_name
+from tallgam.data.sources import Source, connect, file_kind, quote
 from tallgam.errors import DataError, SpecError, TallgamError, TallgamWarning
 from tallgam.progress import Event
 
@@ -82,12 +83,6 @@ class Partition:
         return f"partition {self.index + 1} of {self.count} ({where})"
 
 
-def _data_items(data, source: Source) -> list:
-    if isinstance(data, Source) or data is source:
-        return list(source.files)
-    return [data] if isinstance(data, (str, os.PathLike)) else list(data)
-
-
 def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[Partition]:
     """The partitions of a file source (``source`` is ``open_source(data)``).
 
@@ -99,8 +94,8 @@ def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[
             f"Parquet/CSV files or a hive-partitioned directory on storage the workers share); "
             f"{source.label} exists only in this process. Write it to Parquet on shared "
             "storage first, or fit without cluster=")
-    given, hive = _expand_paths(_data_items(data, source))
-    kind = _file_kind(given)
+    given, hive = source.files, source.hive
+    kind = source.kind or file_kind(given)
     files = [os.path.abspath(f) for f in given]   # workers have another working directory
     schema = tuple(source.schema.items())
     hive_types = None
@@ -155,9 +150,7 @@ def open_partition(part: Partition, threads: int | None = None) -> Source:
     """Open one partition as a :class:`Source` (on a worker, or here in tests)."""
     import duckdb
 
-    con = duckdb.connect()
-    if threads:
-        con.execute(f"SET threads = {int(threads)}")
+    con = connect(threads=threads)
     options = []
     if part.hive_types is not None:
         options.append("hive_partitioning = true")
@@ -289,7 +282,7 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
             raise Abandoned("another part failed; scoring was abandoned")
     stop()
     final = os.path.join(folder, PART_NAME.format(part.index))
-    tmp = os.path.join(folder, f".{PART_NAME.format(part.index)}.{uuid.uuid4().hex[:10]}.tmp")
+    tmp = os.path.join(folder, owned_name("part", f"-{PART_NAME.format(part.index)}.tmp"))
     with _task_threads(threads) as n:
         source = open_partition(part, n)
         try:
@@ -304,6 +297,8 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
             return scorer.report
         except TallgamError as exc:
             raise _in_partition(part, exc) from exc
+        except OSError as exc:  # the worker's disk is full, say
+            raise _in_partition(part, output_error(exc, final)) from exc
         finally:
             if os.path.exists(tmp):
                 os.remove(tmp)
