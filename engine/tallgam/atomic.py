@@ -151,8 +151,11 @@ def check_folder(folder: str | os.PathLike) -> str:
     folder = os.path.abspath(os.fspath(folder))
     if os.path.isdir(folder):
         if not os.access(folder, os.W_OK | os.X_OK):
-            raise OutputError(f"no permission to write in the folder {folder!r}; choose a "
-                              "folder you may write to")
+            read_only = os.statvfs(folder).f_flag & os.ST_RDONLY
+            reason = "is on a read-only file system" if read_only else \
+                "is not writable by this user"
+            raise OutputError(f"the folder {folder!r} {reason}; choose a folder you may "
+                              "write to")
         return folder
     probe = folder
     while not os.path.lexists(probe) and os.path.dirname(probe) != probe:

@@ -33,7 +33,11 @@ class FitError(TallgamError, RuntimeError):
 
 class OutputError(TallgamError, OSError):
     """An output cannot be written where it was asked: the folder is missing, is a file or is
-    not writable, the path is a folder, the disk is full. The message names the path."""
+    not writable, the path is a folder, the disk is full. The message names the path;
+    ``errno`` and ``filename`` are set when a file-system call failed."""
+
+    def __str__(self) -> str:  # the message, not OSError's "[Errno n] ..." layout
+        return str(self.args[0]) if self.args else ""
 
 
 class OutOfMemoryError(TallgamError, MemoryError):

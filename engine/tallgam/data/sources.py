@@ -132,8 +132,9 @@ class Source:
                 "smaller batch_rows or fewer threads, or free memory")
         culprit = None if isinstance(exc, _QUERY_FAULTS) else self._culprit(text)
         if culprit is not None:
-            return DataError(f"{doing} {culprit!r} (one of the {len(self.files)} files of "
-                             f"{self.label}) failed: {clip(exc)}")
+            return DataError(f"{doing} {clip(culprit, 300)} (file "
+                             f"{self.files.index(culprit) + 1} of the {len(self.files)} of "
+                             f"the source) failed: {clip(exc)}")
         return DataError(f"{doing} {self.label} failed: {clip(exc)}")
 
     def _culprit(self, text: str | None) -> str | None:
@@ -163,7 +164,7 @@ class Source:
 
 
 def label_columns(names: Sequence[str]) -> str:
-    return ("column " if len(names) == 1 else "columns ") + ", ".join(repr(n) for n in names)
+    return ("column " if len(names) == 1 else "columns ") + ", ".join(shorten(n) for n in names)
 
 
 def rebatch(reader: Iterator[pa.RecordBatch], rows: int) -> Iterator[pa.RecordBatch]:
@@ -331,12 +332,14 @@ def _file_types(con, files: list[str], kind: str, hive: bool) -> dict[str, dict[
     return types
 
 
-def _text_as_number(con, f: str, column: str) -> bool:
-    """Whether a CSV file's text column holds only numbers or nothing (a column DuckDB
-    sniffed as text because it is empty in that file)."""
-    text = (f"SELECT count(*) FROM read_csv(?) WHERE {quote(column)} IS NOT NULL AND "
-            f"TRY_CAST({quote(column)} AS DOUBLE) IS NULL")
-    return con.execute(text, [f]).fetchall()[0][0] == 0
+def _text_content(con, f: str, column: str) -> str:
+    """What a CSV file's text column holds: "empty" (DuckDB sniffs a column without values
+    as text), "numbers" or "text"."""
+    c = quote(column)
+    filled, other = con.execute(
+        f"SELECT count({c}), count(*) FILTER (WHERE {c} IS NOT NULL AND TRY_CAST({c} AS "
+        "DOUBLE) IS NULL) FROM read_csv(?)", [f]).fetchall()[0]
+    return "empty" if not filled else "numbers" if not other else "text"
 
 
 def _unify(con, files: list[str], kind: str, hive: bool) -> dict[str, str]:
@@ -364,10 +367,17 @@ def _unify(con, files: list[str], kind: str, hive: bool) -> dict[str, str]:
             seen.setdefault(per_file[f][c], []).append(f)
         if len(seen) == 1:
             continue
-        if kind == "csv" and "VARCHAR" in seen and all(
-                _text_as_number(con, f, c) for f in seen["VARCHAR"]):
-            seen.setdefault("DOUBLE", []).extend(seen.pop("VARCHAR"))
-        target, changed = _common_type(set(seen))
+        if kind == "csv" and "VARCHAR" in seen:
+            content = {f: _text_content(con, f, c) for f in seen["VARCHAR"]}
+            if "text" not in content.values():  # empty: any type; numbers: DOUBLE
+                del seen["VARCHAR"]
+                numbers = [f for f, what in content.items() if what == "numbers"]
+                if numbers:
+                    seen.setdefault("DOUBLE", []).extend(numbers)
+                if not seen:
+                    continue
+        target, changed = ((next(iter(seen)), False) if len(seen) == 1
+                           else _common_type(set(seen)))
         where = "; ".join(f"{t} in {_examples(fs)}" for t, fs in sorted(seen.items()))
         if target is None:
             raise DataError(f"column {shorten(c)} has types that do not mix in the "

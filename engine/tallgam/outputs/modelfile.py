@@ -252,4 +252,5 @@ def _check_finite_covariance(cov: Covariance, where: str) -> None:
         if len(bad):
             at = "".join(f"[{int(k)}]" for k in bad[0])
             raise ModelFileError(f"{where} is damaged: {name} entry {at} is "
-                                 f"{a[tuple(bad[0])]!r}; save the model again or refit it")
+                                 f"{float(a[tuple(bad[0])])!r}; save the model again or "
+                                 "refit it")
