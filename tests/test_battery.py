@@ -167,6 +167,16 @@ def test_an_empty_csv_column_does_not_make_the_column_text(tmp_path):
     assert open_source(str(tmp_path / "*.csv")).schema["k"] == "BIGINT"
 
 
+def test_hive_keys_are_typed_over_all_paths_not_file_by_file(tmp_path):
+    for region, x in (("1", [1.0, 2.0]), ("north", [3.0])):
+        (tmp_path / f"region={region}").mkdir()
+        pq.write_table(pa.table({"x": x}), tmp_path / f"region={region}" / "p.parquet")
+    src = open_source(tmp_path)                   # '1' alone would be typed BIGINT
+    assert src.schema == {"x": "DOUBLE", "region": "VARCHAR"}
+    assert sorted(src.fetchall("SELECT region, x FROM tallgam_source")) == \
+        [("1", 1.0), ("1", 2.0), ("north", 3.0)]
+
+
 def test_numbers_and_text_in_one_column_are_refused_naming_files_and_column(tmp_path):
     pq.write_table(pa.table({"g": [1, 2]}), tmp_path / "a.parquet")
     pq.write_table(pa.table({"g": ["north", "south"]}), tmp_path / "b.parquet")
@@ -768,37 +778,37 @@ def test_spooled_reader_of_a_killed_run_is_removed_by_the_next(tmp_path, monkeyp
     assert leftovers(here) == []
 
 
-def test_scoring_temporary_of_a_killed_run_is_removed_by_the_next_write(
-        fitted, model_file, tmp_path):
-    data = tmp_path / "d.parquet"
-    book(2, n=30_000).to_parquet(data)
-    out = tmp_path / "out"
-    out.mkdir()
-    _kill_when_ready("""
+KILLED_STREAMS = {  # a streaming run killed midway: (code, its temporary's prefix)
+    "score": ("""
         tg.load(sys.argv[2]).score(sys.argv[3], os.path.join(here, "s.parquet"),
                                    batch_rows=1000, progress=hold)
-        """, out, model_file, data)
-    assert len(leftovers(out)) == 1 and leftovers(out)[0].startswith(".tallgam-score-")
-    fitted.save(out / "m.json")            # any output into the folder cleans it
-    assert os.listdir(out) == ["m.json"]
-
-
-def test_holdout_scratch_of_a_killed_validation_is_removed_by_the_next(
-        fitted, model_file, tmp_path):
-    data = tmp_path / "d.parquet"
-    book(2, n=30_000).to_parquet(data)
-    here = tmp_path / "scratch"
-    here.mkdir()
-    _kill_when_ready("""
+        """, ".tallgam-score-"),
+    "validate": ("""
         from tallgam.outputs.validation import validate
         validate(tg.load(sys.argv[2]), sys.argv[3], batch_rows=1000, progress=hold,
                  scratch_dir=here)
-        """, here, model_file, data)
-    assert len(leftovers(here)) == 1 and leftovers(here)[0].startswith("tallgam-holdout-")
+        """, "tallgam-holdout-"),
+}
+
+
+@pytest.mark.parametrize("run", list(KILLED_STREAMS))
+def test_temporary_of_a_killed_stream_is_removed_by_the_next_run(fitted, model_file, tmp_path,
+                                                                 run):
     from tallgam.outputs.validation import validate
 
-    validate(fitted, data, scratch_dir=str(here))
-    assert leftovers(here) == []
+    data = tmp_path / "d.parquet"
+    book(2, n=30_000).to_parquet(data)
+    here = tmp_path / "here"
+    here.mkdir()
+    code, prefix = KILLED_STREAMS[run]
+    _kill_when_ready(code, here, model_file, data)
+    assert len(leftovers(here)) == 1 and leftovers(here)[0].startswith(prefix)
+    if run == "score":
+        fitted.save(here / "m.json")            # any output into the folder cleans it
+        assert os.listdir(here) == ["m.json"]
+    else:
+        validate(fitted, data, scratch_dir=str(here))
+        assert leftovers(here) == []
 
 
 def test_temporaries_of_live_processes_and_other_hosts_are_kept(tmp_path):

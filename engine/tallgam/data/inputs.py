@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 from tallgam.data.profile import DataProfile, Field, Rule
 from tallgam.data.sources import Source, quote
-from tallgam.errors import ColumnNotFound, DataError
+from tallgam.errors import ColumnNotFound, DataError, shorten
 from tallgam.model import Model
 
 Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
@@ -86,8 +86,9 @@ def column_or_expression(source: Source, text: str, role: str) -> str:
         from tallgam.errors import nearest
 
         raise ColumnNotFound(
-            f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"
-            f" nor a SQL expression DuckDB accepts ({exc})") from None
+            f"{role} {shorten(text)} is neither a column of {source.label}"
+            f"{nearest(text, source.schema)} nor a SQL expression DuckDB accepts ({exc})"
+        ) from None
     return f"({text})"
 
 
@@ -121,18 +122,18 @@ def model_inputs(model: Model, source: Source, design_specs, for_prediction: boo
         fields_.append(Field("response", exprs[Y]))
         for cond, msg in model.family.response_rules:
             rules.append(Rule(f"response: {msg}", "response", cond.format(y="{response}"),
-                              f"response {model.response!r} has {msg}"))
+                              f"response {shorten(model.response)} has {msg}"))
     if W in exprs:
         select.append(f"CAST({exprs[W]} AS DOUBLE) AS {W}")
         fields_.append(Field("weights", exprs[W]))
         rules.append(Rule("weights: not positive", "weights", "{weights} <= 0",
-                          f"weights {model.weights!r} has values ≤ 0"))
+                          f"weights {shorten(model.weights)} has values ≤ 0"))
     parts = []
     if "__exposure" in exprs:
         parts.append(f"ln(CAST({exprs['__exposure']} AS DOUBLE))")
         fields_.append(Field("exposure", exprs["__exposure"]))
         rules.append(Rule("exposure: not positive", "exposure", "{exposure} <= 0",
-                          f"exposure {model.exposure!r} has values ≤ 0"))
+                          f"exposure {shorten(model.exposure)} has values ≤ 0"))
     if "__offset" in exprs:
         parts.append(f"CAST({exprs['__offset']} AS DOUBLE)")
         fields_.append(Field("offset", exprs["__offset"]))
@@ -181,7 +182,7 @@ def complete_rows_condition(fields_: list[Field]) -> str:
 
 def check_profile(profile: DataProfile, source: Source, model: Model) -> None:
     """DataError for empty data, NULL/NaN/inf values and rule violations (with counts)."""
-    where = f" after the filter {model.where!r}" if model.where else ""
+    where = f" after the filter {shorten(model.where)}" if model.where else ""
     if profile.rows == 0:
         raise DataError(f"{source.label} has no rows{where}")
     bad = []

@@ -320,15 +320,17 @@ def _reader(con, kind: str, hive: bool, union: bool = False):
 def _file_types(con, files: list[str], kind: str, hive: bool) -> dict[str, dict[str, str]]:
     """Column types of every file on its own (DuckDB reads only Parquet footers; CSV files
     are sniffed), or a DataError naming the file that cannot be read."""
-    read = _reader(con, kind, hive)
+    reader = "read_parquet" if kind == "parquet" else "read_csv"
+    option = ", hive_partitioning = true" if hive else ""
     types = {}
     for f in files:
+        literal = "'" + f.replace("'", "''") + "'"
         try:
-            rel = read([f])
-            types[f] = {c: str(t) for c, t in zip(rel.columns, rel.dtypes)}
+            rows = con.execute(f"DESCRIBE SELECT * FROM {reader}({literal}{option})").fetchall()
         except duckdb.Error as exc:
             raise DataError(f"cannot read {shorten(f)} (one of the {len(files)} files of the "
                             f"source): {clip(exc)}") from None
+        types[f] = {row[0]: row[1] for row in rows}
     return types
 
 
@@ -348,6 +350,10 @@ def _unify(con, files: list[str], kind: str, hive: bool) -> dict[str, str]:
     common type (a TallgamWarning says so when values change kind), or a DataError naming
     the files and the column when no common type is sound. Returns the columns to cast."""
     per_file = _file_types(con, files, kind, hive)
+    keys = {part.split("=", 1)[0] for f in files for part in Path(f).parent.parts
+            if "=" in part} if hive else set()
+    for f in files:  # hive keys come from the paths: DuckDB types them over all files at once
+        per_file[f] = {c: t for c, t in per_file[f].items() if c not in keys}
     first = files[0]
     columns = per_file[first]
     for f in files[1:]:

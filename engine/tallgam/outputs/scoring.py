@@ -52,7 +52,7 @@ class Scorer:
     def __init__(self, fit, source: Source, *, with_offset: bool = True, unseen: str = "error",
                  keep: tuple[str, ...] = (), extra: dict[str, str] | None = None):
         if unseen not in UNSEEN:
-            raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {unseen!r}")
+            raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {shorten(unseen)}")
         self.fit = fit
         self.source = source
         self.design: Design = fit.design
