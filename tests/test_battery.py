@@ -39,6 +39,9 @@ from tallgam import OutOfMemoryError, OutputError, atomic
 from tallgam.cli import failure, main
 from tallgam.data.sources import open_source
 
+pytestmark = pytest.mark.filterwarnings(
+    "ignore:.*outside the training range:tallgam.TallgamWarning")
+
 N = 400
 
 
