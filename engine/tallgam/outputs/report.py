@@ -243,12 +243,14 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
 
 def write_report(fit, path, *, data=None, against=None, title: str | None = None,
                  progress=False) -> str:
-    """Validate on ``data`` (if given) and write the HTML report atomically; returns path."""
-    from tallgam.outputs.modelfile import atomic_write_text
+    """Validate on ``data`` (if given) and write the HTML report atomically; returns path.
+    The output path is checked first, so a bad one fails before the validation pass."""
+    from tallgam.atomic import check_target, write_text
 
+    check_target(path)
     validation = check = None
     if data is not None:
         validation = fit.validate(data, against=against, progress=progress)
         check = fit.check(data)
-    atomic_write_text(path, html_report(fit, validation, title=title, check=check))
+    write_text(path, html_report(fit, validation, title=title, check=check))
     return str(path)

@@ -16,6 +16,7 @@ import numpy as np
 from scipy import linalg
 
 from tallgam.errors import FitError
+from tallgam.options import Tuning
 from tallgam.passes.design import Design
 from tallgam.passes.state import PassState
 from tallgam.solve.covariance import Covariance
@@ -27,15 +28,13 @@ from tallgam.solve.smoothing import (
     null_eigenvalues,
 )
 
-ELIMINATE_LEVELS = 200  # a random effect with at least this many levels is eliminated
-
 
 class Constraints:
     """Z and the penalties in free coordinates, for one design.
 
-    The largest random effect with at least ``eliminate_from`` levels (None: the module's
-    :data:`ELIMINATE_LEVELS`; 0: never) is *eliminated*: its free coefficients are its raw
-    ones (Z_e = I, penalty λ·I), they come last in free coordinates and its λ last, and the
+    The largest random effect with at least ``eliminate_from`` levels (None: the default
+    of :class:`tallgam.options.Tuning`; 0: never) is *eliminated*: its free coefficients are
+    its raw ones (Z_e = I, penalty λ·I), they come last in free coordinates and its λ last, and the
     working problem carries it as an :class:`EliminatedBlock`, so nothing of size L × L is
     formed. ``Z`` then maps the ``kept`` raw columns to the kept free ones. GCV and UBRE
     work on the full problem, so only REML and fixed smoothing eliminate.
@@ -45,7 +44,7 @@ class Constraints:
                  eliminate_from: int | None = None):
         self.design = design
         if eliminate_from is None:
-            eliminate_from = ELIMINATE_LEVELS
+            eliminate_from = Tuning().eliminate_levels
         self.eliminated = (_eliminated_basis(design, eliminate_from)
                            if criterion in ("reml", "fixed") else None)
         kept_bases = [j for j in range(len(design.bases)) if j != self.eliminated]
