@@ -77,7 +77,7 @@ def test_null_nan_inf_are_counted_per_column():
     assert re.search(r"'x': 5 NULL", msg), msg
     assert re.search(r"'z': 0 NULL, 3 NaN/inf", msg), msg
     assert re.search(r"'g': 3 NULL", msg), msg
-    assert "missing='drop'" in msg
+    assert 'set missing to "drop"' in msg
 
 
 def test_missing_drop_leaves_rows_out_and_says_how_many():

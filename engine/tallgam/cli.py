@@ -17,7 +17,7 @@ import os
 import sys
 import warnings
 
-from tallgam.atomic import check_target, make_folder, replacing
+from tallgam.atomic import check_target, make_folder
 from tallgam.errors import (
     ConvergenceWarning,
     DataError,
@@ -98,24 +98,71 @@ def _show_warnings(caught) -> None:
         _err(f"warning: {w.message}")
 
 
+def _say(args, text: str) -> None:
+    """A message for the person at the terminal (stderr); nothing with --quiet."""
+    if not getattr(args, "quiet", False):
+        print(text, file=sys.stderr)
+
+
+def _print(args, text: str) -> None:
+    """A result on stdout; nothing with --quiet."""
+    if not getattr(args, "quiet", False):
+        print(text)
+
+
+def _source(args, required: bool = True):
+    """The data named on the command line: SOURCE (a file, glob or folder) or --sql QUERY
+    (with --database FILE). None when neither is given and none is required."""
+    if getattr(args, "sql", None) is not None:
+        if args.source is not None:
+            raise SpecError(f"give the data either as SOURCE ({args.source!r}) or with --sql, "
+                            "not both")
+        from tallgam.data.sources import sql
+
+        return sql(args.sql, database=args.database)
+    if getattr(args, "database", None) is not None:
+        raise SpecError("--database names the DuckDB file that --sql reads; give --sql too")
+    if args.source is None and required:
+        raise SpecError("name the data: SOURCE (a Parquet/CSV file, glob or folder) or "
+                        "--sql QUERY")
+    return args.source
+
+
+def _reference_values(items: list[str] | None) -> dict:
+    reference = {}
+    for item in items or []:
+        col, _, value = item.partition("=")
+        try:
+            reference[col] = float(value)
+        except ValueError:
+            raise SpecError(f"--reference takes COLUMN=NUMBER, got {item!r}") from None
+    return reference
+
+
 def cmd_fit(args) -> int:
+    from dataclasses import replace
+
     from tallgam.spec import load_spec
 
     spec = load_spec(args.spec)
-    data = args.data or spec.data
+    data = _source(args, required=False) or spec.data
     if not data:
-        raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
+        raise SpecError(f"{args.spec} names no data: add data = \"...\" to it, or give "
+                        "SOURCE or --sql")
+    model = spec.model
+    if args.where:
+        where = f"({model.where}) AND ({args.where})" if model.where else args.where
+        model = replace(model, where=where)
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
     binned = spec.binned if args.binned is None else args.binned
     check_target(out)  # a bad output path fails now, not after the fit
-    fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
-                         threads=args.threads or spec.threads, progress=_progress(args),
-                         cluster=args.cluster, binned=binned,
-                         scratch=args.scratch if args.scratch is not None else spec.scratch)
+    fit = model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
+                    threads=args.threads or spec.threads, progress=_progress(args),
+                    cluster=args.cluster, binned=binned,
+                    scratch=args.scratch if args.scratch is not None else spec.scratch)
     fit.save(out)
-    if not args.quiet:
-        print(fit.summary())
-    print(f"model written to {out}", file=sys.stderr)
+    _print(args, fit.summary())
+    _say(args, f"model written to {out}")
     return EXIT_OK if fit.converged else EXIT_NOT_CONVERGED
 
 
@@ -124,16 +171,9 @@ def cmd_show(args) -> int:
 
     fit = load(args.model)
     print(fit.summary())
-    prof = fit.profile
-    print(f"\n  training data: {prof.rows:,} rows")
-    for name, col in prof.columns.items():
-        if col.kind == "numeric":
-            print(f"  - {name}: {col.min:g} to {col.max:g} (mean {col.mean:.6g})")
-        else:
-            print(f"  - {name}: {col.distinct} levels")
-    prov = fit.provenance
-    if prov:
-        print(f"\n  fitted {prov.get('fitted_at', '?')} by tallgam {prov.get('tallgam_version')}")
+    from tallgam.outputs.summary import profile_text
+
+    print(profile_text(fit), end="")
     return EXIT_OK
 
 
@@ -143,11 +183,16 @@ def cmd_score(args) -> int:
     fit = load(args.model)
     keep = [k for k in (args.keep or "").split(",") if k]
     extra = {"cluster": args.cluster, "threads": args.threads} if args.cluster else {}
-    report = fit.score(args.input, args.output, keep=keep, terms=args.terms, se=args.se,
+    if args.cluster and args.where:
+        raise SpecError("--where cannot be used with --cluster (the workers read whole "
+                        "files); write the rows to score to files first")
+    if not args.cluster:
+        extra["where"] = args.where
+    report = fit.score(_source(args), args.output, keep=keep, terms=args.terms, se=args.se,
                        unseen=args.unseen, batch_rows=args.batch_rows,
                        progress=_progress(args), **extra)
     where = f"the part files of {args.output}" if args.cluster else args.output
-    print(f"scored {report.rows:,} rows into {where}", file=sys.stderr)
+    _say(args, f"scored {report.rows:,} rows into {where}")
     return EXIT_OK
 
 
@@ -155,52 +200,48 @@ def cmd_sql(args) -> int:
     from tallgam.model import load
 
     fit = load(args.model)
-    print(fit.to_sql(output=args.output, with_offset=not args.no_offset))
+    text = fit.to_sql(output=args.scale, with_offset=not args.no_offset)
+    if args.output:
+        from tallgam.atomic import write_text
+
+        write_text(args.output, text + "\n")
+        _say(args, f"SQL written to {args.output}")
+    else:
+        print(text)
     return EXIT_OK
 
 
 def cmd_tables(args) -> int:
     from tallgam.model import load
+    from tallgam.outputs.formatting import number
 
     fit = load(args.model)
-    reference = {}
-    for item in args.reference or []:
-        col, _, value = item.partition("=")
-        try:
-            reference[col] = float(value)
-        except ValueError:
-            raise SpecError(f"--reference takes COLUMN=NUMBER, got {item!r}") from None
     formats = [f for f in args.format.split(",") if f]
-    tables = fit.relativities(reference=reference)
+    make_folder(args.output)  # a bad output folder fails now, not after reading data
+    tables = fit.relativities(reference=_reference_values(args.reference),
+                              data=_source(args, required=False), where=args.where)
     paths = tables.write(args.output, formats=formats)
     if tables.base_rate is not None:
-        print(f"base rate {tables.base_rate:.6g} per unit of exposure")
-    print(f"{len(paths)} files written to {args.output}", file=sys.stderr)
+        unit = " per unit of exposure" if fit.model.exposure else ""
+        _print(args, f"base rate {number(tables.base_rate, 6)}{unit}")
+    _say(args, f"{len(paths)} files written to {args.output} (notes.txt explains them)")
     return EXIT_OK
 
 
 def cmd_validate(args) -> int:
     from tallgam.model import load
+    from tallgam.outputs.formatting import CAUTION
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
     if args.output:
         make_folder(args.output)  # a bad output folder fails now, not after the pass
-    val = fit.validate(args.data, against=against, batch_rows=args.batch_rows,
-                       progress=_progress(args))
-    print(val.summary())
+    val = fit.validate(_source(args), against=against, where=args.where,
+                       batch_rows=args.batch_rows, progress=_progress(args))
+    _print(args, val.summary() + f"\n\nCaution: {CAUTION}")
     if args.output:
-        import pyarrow.csv as pacsv
-
-        named = {"lift": val.lift, "lorenz": val.lorenz}
-        if val.double_lift is not None:
-            named["double_lift"] = val.double_lift
-        for col, table in val.actual_vs_expected.items():
-            named[f"actual_vs_expected_{col}"] = table
-        for name, table in named.items():
-            with replacing(os.path.join(args.output, f"{name}.csv")) as tmp:
-                pacsv.write_csv(table, tmp)
-        print(f"{len(named)} tables written to {args.output}", file=sys.stderr)
+        paths = val.write(args.output)
+        _say(args, f"{len(paths)} files written to {args.output} (notes.txt explains them)")
     return EXIT_OK
 
 
@@ -208,13 +249,13 @@ def cmd_check(args) -> int:
     from tallgam.model import load
 
     fit = load(args.model)
-    check = fit.check(args.data, where=args.where)
-    print(check.summary())
+    check = fit.check(_source(args), where=args.where)
+    _print(args, check.summary())
     if args.output:
         from tallgam.atomic import write_text
 
         write_text(args.output, check.to_json() + "\n")
-        print(f"check written to {args.output}", file=sys.stderr)
+        _say(args, f"check written to {args.output}")
     if args.alert is not None and check.worst_psi >= args.alert:
         _err(f"a stability index reached {check.worst_psi:.3f} (alert level {args.alert:g}): "
              f"{', '.join(check.flagged(args.alert))}")
@@ -228,18 +269,22 @@ def cmd_report(args) -> int:
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
-    path = write_report(fit, args.output, data=args.data, against=against, title=args.title,
-                        progress=_progress(args))
-    print(f"report written to {path}", file=sys.stderr)
+    data = _source(args, required=False)
+    if data is None and (args.where or against is not None):
+        raise SpecError("--where and --against apply to hold-out data: give SOURCE or --sql")
+    path = write_report(fit, args.output, data=data, where=args.where, against=against,
+                        title=args.title, progress=_progress(args))
+    _say(args, f"report written to {path}")
     return EXIT_OK
 
 
 def cmd_demo(args) -> int:
     from tallgam.demo import run_demo
-    from tallgam.outputs.report import CAUTION
+    from tallgam.outputs.formatting import CAUTION
 
     def echo(text: str) -> None:
-        print(text, flush=True)
+        if not args.quiet:
+            print(text, flush=True)
 
     res = run_demo(args.dir, rows=args.rows, seed=args.seed, progress=_progress(args),
                    echo=echo)
@@ -247,38 +292,81 @@ def cmd_demo(args) -> int:
          f"{res.expected_claims:,.1f} (ratio {res.actual_claims / res.expected_claims:.4f})")
     echo(f"models: {os.path.join(res.folder, 'frequency.json')}, "
          f"{os.path.join(res.folder, 'severity.json')}; scores: {res.scored}")
+    echo("spec files to copy from: " + ", ".join(res.specs))
     if res.reports:
         echo("reports: " + ", ".join(res.reports))
-    echo(f"\n{CAUTION}")
+    echo(f"\nCaution: {CAUTION}")
     return EXIT_OK
+
+
+SOURCE_HELP = ("the data: a Parquet or CSV file, a glob (quote it: \"book/*.parquet\") or a "
+               "folder (hive partitions are detected)")
 
 
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(
         prog="tallgam",
-        description="Generalized additive models fitted to data larger than memory.",
+        description="Generalized additive models fitted to data larger than memory. Every "
+                    "command that reads data takes it as SOURCE (files) or --sql QUERY, and "
+                    "--where CONDITION to keep some rows; -o/--output always names the file "
+                    "(or folder) written.",
         epilog="Exit codes: 0 ok, 1 unexpected failure, 2 usage/spec error, 3 data error, "
                "4 fit did not converge, 5 model-file error, 6 output/file-system error (folder "
                "missing or not writable, disk full), 7 out of memory, 8 check found a stability "
-               "index at the alert level, 130 interrupted.")
+               "index at the alert level, 130 interrupted. docs/commands/ has a page per "
+               "command.")
     p.add_argument("--version", action="version", version=f"tallgam {__version__}")
     p.add_argument("--debug", action="store_true",
                    help="print the Python traceback of a failure (for reporting a bug)")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    def common(sp, progress=True):
-        sp.add_argument("-q", "--quiet", action="store_true", help="no progress or summary")
+    def quiet(sp, progress=True):
+        sp.add_argument("-q", "--quiet", action="store_true",
+                        help="print nothing but errors and warnings (no progress, summary or "
+                             "messages)")
         if progress:
             sp.add_argument("--log-json", action="store_true",
                             help="progress as JSON lines on stderr (for batch logs)")
 
-    f = sub.add_parser("fit", help="fit the model of a TOML spec file and write the model file")
-    f.add_argument("spec", help="the spec file (TOML)")
-    f.add_argument("-o", "--output", help="model file to write (default: SPEC with .json)")
-    f.add_argument("--data", help="data source, overriding the spec's 'data'")
-    f.add_argument("--batch-rows", type=int, default=None)
-    f.add_argument("--threads", type=int, default=None,
-                   help="cores to use (with --cluster: threads per task, default 1)")
+    def model(sp):
+        sp.add_argument("model", metavar="MODEL",
+                        help="the model file (JSON) written by tallgam fit")
+
+    def source(sp, optional: bool, what: str = "the data"):
+        # always optional for argparse, so that --sql can stand in for it; _source insists
+        sp.add_argument("source", nargs="?", metavar="SOURCE", default=None,
+                        help=SOURCE_HELP.replace("the data", what)
+                        + ("; optional" if optional else "") + "; or give --sql instead")
+        sp.add_argument("--sql", metavar="QUERY", default=None,
+                        help="read the rows of this DuckDB SQL query instead of SOURCE, e.g. "
+                             "\"SELECT * FROM 'book/*.parquet' JOIN ...\"")
+        sp.add_argument("--database", metavar="FILE", default=None,
+                        help="with --sql: a DuckDB database file to run the query in "
+                             "(opened read-only)")
+        sp.add_argument("--where", metavar="CONDITION", default=None,
+                        help="keep only the rows meeting this SQL condition, e.g. "
+                             "\"policy_year = 2024\"")
+
+    def batch_rows(sp, default):
+        sp.add_argument("--batch-rows", type=int, default=default, metavar="N",
+                        help="rows read and held in memory at once (the memory bound; "
+                             f"default {default:,})" if default else
+                             "rows read and held in memory at once (the memory bound; "
+                             "default: the spec's batch_rows, else 1,000,000)")
+
+    f = sub.add_parser("fit", help="fit the model of a spec file and write the model file",
+                       description="Fit the model a spec file (TOML) describes, print its "
+                                   "summary and write the model file.")
+    f.add_argument("spec", metavar="SPEC",
+                   help="the spec file (TOML): the model's keys and one [[term]] table per "
+                        "term (docs/spec-file.md)")
+    source(f, optional=True, what="the training data, instead of the spec's data")
+    f.add_argument("-o", "--output", help="model file to write (default: the spec's output, "
+                                          "else SPEC with .json)")
+    batch_rows(f, None)
+    f.add_argument("--threads", type=int, default=None, metavar="N",
+                   help="cores to use (default: all; with --cluster: threads per task, "
+                        "default 1)")
     f.add_argument("--binned", nargs="?", type=int, const=True, default=None,
                    metavar="POINTS",
                    help="binned passes: code covariates into tables of distinct values, "
@@ -291,81 +379,121 @@ def build_parser() -> argparse.ArgumentParser:
                    help="run the data passes on the Dask cluster whose scheduler is at "
                         "ADDRESS (e.g. tcp://host:8786); needs tallgam[dask] and data on "
                         "storage every worker reads")
-    common(f)
+    quiet(f)
     f.set_defaults(func=cmd_fit)
 
-    s = sub.add_parser("show", help="summary of a saved model")
-    s.add_argument("model")
+    s = sub.add_parser("show", help="the summary of a saved model and its training data",
+                       description="Print the summary of a saved model (data, fit, terms, "
+                                   "levels, notes) and the profile of its training data.")
+    model(s)
     s.set_defaults(func=cmd_show)
 
-    sc = sub.add_parser("score", help="stream predictions of a source into Parquet")
-    sc.add_argument("model")
-    sc.add_argument("input", help="data to score: file, glob or directory")
-    sc.add_argument("-o", "--output", required=True,
-                    help="Parquet file to write (with --cluster: a directory of part files)")
-    sc.add_argument("--keep", help="comma-separated columns to carry through (e.g. keys)")
-    sc.add_argument("--terms", action="store_true", help="add each term's contribution")
+    sc = sub.add_parser("score", help="stream predictions of a source into a Parquet or CSV "
+                                      "file",
+                        description="Predict every row of the data, batch by batch, into one "
+                                    "file; its extension (.parquet or .csv) sets the format.")
+    model(sc)
+    source(sc, optional=False, what="the data to score")
+    sc.add_argument("-o", "--output", required=True, metavar="FILE",
+                    help="file to write: .parquet or .csv (with --cluster: a folder of "
+                         "Parquet part files)")
+    sc.add_argument("--keep", metavar="COLUMNS",
+                    help="comma-separated columns to carry through (e.g. policy keys)")
+    sc.add_argument("--terms", action="store_true",
+                    help="add each term's contribution (link scale)")
     sc.add_argument("--se", action="store_true", help="add standard errors")
     sc.add_argument("--unseen", choices=["error", "base"], default="error",
-                    help="unseen levels: stop (default) or use the base level")
-    sc.add_argument("--batch-rows", type=int, default=1_000_000)
+                    help="levels not seen in training: stop (error, the default) or give "
+                         "them the base level's effect (base)")
+    batch_rows(sc, 1_000_000)
     sc.add_argument("--cluster", metavar="ADDRESS", default=None,
                     help="score on the Dask cluster whose scheduler is at ADDRESS; writes "
-                         "OUTPUT as a directory of part files, only when all succeeded")
-    sc.add_argument("--threads", type=int, default=None,
+                         "OUTPUT as a folder of part files, only when all succeeded")
+    sc.add_argument("--threads", type=int, default=None, metavar="N",
                     help="with --cluster: threads per task (default 1)")
-    common(sc)
+    quiet(sc)
     sc.set_defaults(func=cmd_score)
 
-    q = sub.add_parser("sql", help="print a DuckDB SQL expression reproducing the predictions")
-    q.add_argument("model")
-    q.add_argument("--output", choices=["response", "link"], default="response")
-    q.add_argument("--no-offset", action="store_true", help="leave out exposure/offset")
+    q = sub.add_parser("sql", help="a DuckDB SQL expression reproducing the predictions",
+                       description="Print (or write with -o) one DuckDB SQL expression that "
+                                   "reproduces the model's predictions.")
+    model(q)
+    q.add_argument("--scale", choices=["response", "link"], default="response",
+                   help="the prediction (response, the default) or the linear predictor "
+                        "(link)")
+    q.add_argument("--no-offset", action="store_true",
+                   help="leave out the exposure (or offset)")
+    q.add_argument("-o", "--output", metavar="FILE", default=None,
+                   help="write the expression to this file instead of printing it")
+    quiet(q, progress=False)
     q.set_defaults(func=cmd_sql)
 
-    t = sub.add_parser("tables", help="write every term's relativity table (CSV, Parquet)")
-    t.add_argument("model")
-    t.add_argument("-o", "--output", required=True, help="folder for the tables")
-    t.add_argument("--format", default="csv,parquet", help="csv, parquet or both (default)")
+    t = sub.add_parser("tables", help="write every rating factor's relativity table (CSV, "
+                                      "Parquet) with notes",
+                       description="Write one relativity table per rating factor, base.csv "
+                                   "and notes.txt into a folder. With SOURCE (or --sql), the "
+                                   "tables also give that data's exposure at each row "
+                                   "(data_weight).")
+    model(t)
+    source(t, optional=True, what="data whose exposure to show beside the training weight")
+    t.add_argument("-o", "--output", required=True, metavar="FOLDER",
+                   help="folder for the tables")
+    t.add_argument("--format", default="csv,parquet",
+                   help="csv, parquet or both, comma-separated (default: both)")
     t.add_argument("--reference", action="append", metavar="COLUMN=VALUE",
                    help="reference value of a numeric column (default: exposure-weighted "
                         "median); repeatable")
+    quiet(t, progress=False)
     t.set_defaults(func=cmd_tables)
 
-    v = sub.add_parser("validate", help="hold-out deviance, Gini, lift, actual vs expected")
-    v.add_argument("model")
-    v.add_argument("data", help="hold-out data: file, glob or directory")
-    v.add_argument("--against", help="a second model file: adds the double lift")
-    v.add_argument("-o", "--output", help="folder to write the tables as CSV")
-    v.add_argument("--batch-rows", type=int, default=1_000_000)
-    common(v)
+    v = sub.add_parser("validate", help="hold-out deviance, Gini, lift, actual over expected",
+                       description="Score hold-out data and print deviance, Gini and lift; "
+                                   "with -o also write every table (CSV) with notes.")
+    model(v)
+    source(v, optional=False, what="the hold-out data")
+    v.add_argument("--against", metavar="MODEL", help="a challenger model file: adds the "
+                                                      "double lift")
+    v.add_argument("-o", "--output", metavar="FOLDER", help="folder to write the tables "
+                                                            "(CSV), summary.txt and notes.txt")
+    batch_rows(v, 1_000_000)
+    quiet(v)
     v.set_defaults(func=cmd_validate)
 
     k = sub.add_parser("check", help="new data against a model's training profile: range, "
                        "unseen levels, population stability index")
-    k.add_argument("model", help="the model file (JSON)")
-    k.add_argument("data", help="data to check: file, glob or directory")
-    k.add_argument("--where", help="SQL filter on the data (e.g. \"policy_year = 2025\")")
+    model(k)
+    source(k, optional=False, what="the data to check")
     k.add_argument("--alert", type=float, default=None, metavar="PSI",
                    help=f"exit with code {EXIT_DRIFT} when a stability index reaches PSI "
                         "(0.25 is the usual alert level, 0.1 the watch level)")
-    k.add_argument("-o", "--output", help="write the check as JSON to this file")
+    k.add_argument("-o", "--output", metavar="FILE", help="write the check as JSON to this "
+                                                          "file")
+    quiet(k, progress=False)
     k.set_defaults(func=cmd_check)
 
-    r = sub.add_parser("report", help="a self-contained HTML report of a model")
-    r.add_argument("model")
-    r.add_argument("--data", help="hold-out data for the validation section")
-    r.add_argument("--against", help="a challenger model file for the double lift")
-    r.add_argument("-o", "--output", required=True, help="HTML file to write")
-    r.add_argument("--title", help="report title")
-    common(r)
+    r = sub.add_parser("report", help="a self-contained HTML report of a model",
+                       description="Write one HTML file: summary, every rating factor's chart "
+                                   "and table, and with hold-out data the validation.")
+    model(r)
+    source(r, optional=True, what="hold-out data for the validation section")
+    r.add_argument("--against", metavar="MODEL",
+                   help="a challenger model file for the double lift")
+    r.add_argument("-o", "--output", required=True, metavar="FILE", help="HTML file to write")
+    r.add_argument("--title", help="the report's title (default: Model of RESPONSE)")
+    quiet(r)
     r.set_defaults(func=cmd_report)
 
-    d = sub.add_parser("demo", help="write an invented motor book, fit, summarise and score")
-    d.add_argument("--rows", type=int, default=1_000_000)
-    d.add_argument("--dir", default="tallgam-demo", help="output folder (default tallgam-demo)")
-    d.add_argument("--seed", type=int, default=7)
-    common(d)
+    d = sub.add_parser("demo", help="write an invented motor book, fit, summarise, report and "
+                                    "score",
+                       description="The whole batch job on an invented motor book: Parquet, "
+                                   "spec files, models, tables, reports, scores.")
+    d.add_argument("--rows", type=int, default=1_000_000, metavar="N",
+                   help="policies in the book (default 1,000,000)")
+    d.add_argument("--dir", default="tallgam-demo", metavar="FOLDER",
+                   help="output folder (default tallgam-demo)")
+    d.add_argument("--seed", type=int, default=7, metavar="N",
+                   help="random seed of the book (default 7)")
+    quiet(d)
     d.set_defaults(func=cmd_demo)
     for command in sub.choices.values():  # --debug after the command works too
         command.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,

@@ -81,7 +81,7 @@ class Model:
                             f"model uses {lnk.name!r}. Use weights, or an explicit offset.")
         if self.criterion == "ubre" and not fam.scale_known:
             raise SpecError(f"UBRE needs a known scale; the {fam.name} family estimates it. "
-                            "Use criterion='reml' or 'gcv'.")
+                            "Set criterion to \"reml\" or \"gcv\".")
         labels = [t.label for t in self.terms]
         dup = {lab for lab in labels if labels.count(lab) > 1}
         if dup:

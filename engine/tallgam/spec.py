@@ -154,6 +154,56 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
                    binned=raw.get("binned", False), scratch=scratch)
 
 
+def _toml_value(value) -> str:
+    import json
+
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(v)}" for k, v in value.items()) + " }"
+    return json.dumps(str(value), ensure_ascii=False)  # a TOML basic string
+
+
+def spec_text(model: Model, *, data=None, comment: str | None = None, **run) -> str:
+    """A spec file (TOML) for ``model``: the keys that differ from the defaults, one
+    ``[[term]]`` table per term; ``data`` and run keys (``batch_rows``, ``binned``, ...)
+    first. :func:`parse_spec` reads it back to an equal model."""
+    from dataclasses import MISSING, fields
+
+    lines = [f"# {line}" for line in (comment or "").splitlines()]
+    if data is not None:
+        lines.append(f"data = {_toml_value(data)}")
+    lines += [f"{k} = {_toml_value(v)}" for k, v in run.items() if v is not None]
+    d = model.to_dict()
+    family = {k: v for k, v in d["family"].items() if v is not None}
+    lines.append(f"response = {_toml_value(d['response'])}")
+    lines.append("family = " + (_toml_value(family["name"]) if len(family) == 1
+                                else _toml_value(family)))
+    if model.link.name != model.family.default_link:
+        lines.append(f"link = {_toml_value(d['link'])}")
+    defaults = {f.name: f.default for f in fields(Model)}
+    for key in ("exposure", "offset", "weights", "where", "criterion", "missing",
+                "max_iterations", "tolerance"):
+        if d[key] is not None and d[key] != defaults.get(key):
+            lines.append(f"{key} = {_toml_value(d[key])}")
+    for term, spec in zip(d["terms"], model.terms):
+        lines += ["", "[[term]]", f"kind = {_toml_value(term['kind'])}"]
+        given = {f.name: f.default for f in fields(spec) if f.default is not MISSING}
+        for key, value in term.items():
+            if key == "kind" or value is None:
+                continue
+            default = given.get(key, MISSING)
+            if default is not MISSING and (value == default or (
+                    isinstance(default, tuple) and value == list(default))):
+                continue
+            lines.append(f"{key} = {_toml_value(value)}")
+    return "\n".join(lines) + "\n"
+
+
 def _resolve(p: str, base: str) -> str:
     return p if os.path.isabs(p) else os.path.join(base, p)
 

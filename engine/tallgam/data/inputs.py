@@ -102,7 +102,7 @@ def model_inputs(model, source: Source, design_specs, for_prediction: bool = Fal
         typ = source.schema[c].upper()
         if kind == "numeric" and not typ.startswith(_NUMERIC_TYPES):
             raise DataError(f"column {c!r} has type {source.schema[c]}, but the model uses it "
-                            "as a number; cast it in SQL or use tg.categorical")
+                            "as a number; cast it in SQL or make it a categorical term")
     exprs: dict[str, str] = {}
     if not for_prediction:
         exprs[Y] = column_or_expression(source, model.response, "response")
@@ -188,7 +188,9 @@ def check_profile(profile: DataProfile, source: Source, model) -> None:
     if bad:
         raise DataError(
             f"missing or non-finite values in {len(bad)} column(s) of {profile.rows} rows — "
-            + "; ".join(bad) + ". Clean them, filter them with where=, or pass missing='drop'.")
+            + "; ".join(bad) + ". Clean them, filter them out with a where condition, or "
+            "set missing to \"drop\" (the key missing of the spec file or of Model) to "
+            "leave such rows out.")
     if profile.violations:
         lines = [f"{msg}: {n} row(s), e.g. {', '.join(f'{v:g}' for v in ex)}"
                  for n, ex, msg in profile.violations.values()]

@@ -262,8 +262,9 @@ def file_kind(files: list[str]) -> str:
             kinds.setdefault("csv", []).append(f)
         else:
             raise DataError(
-                f"file {shorten(f)}: unknown format; use a .parquet or .csv file, or open it "
-                "with tg.sql(\"SELECT * FROM read_...('...')\")"
+                f"file {shorten(f)}: unknown format; use a .parquet or .csv file, or read it "
+                "through a SQL query (\"SELECT * FROM read_...('...')\": --sql on the "
+                "command line, tg.sql in Python)"
             )
     if len(kinds) > 1:
         raise DataError(f"the source mixes Parquet files ({_examples(kinds['parquet'])}) and "
@@ -365,7 +366,8 @@ def _unify(con, files: list[str], kind: str, hive: bool) -> dict[str, str]:
                 f"has {label_columns(new)} more" if new else "") if x)
             raise DataError(f"the files of the source do not have the same columns: "
                             f"{shorten(f)} {clip(what, 300)} compared with {shorten(first)}; "
-                            "read them separately or select common columns with tg.sql(...)")
+                            "read them separately or select common columns with a SQL query "
+                            "(--sql on the command line, tg.sql in Python)")
     casts: dict[str, str] = {}
     for c in columns:
         seen: dict[str, list[str]] = {}
@@ -397,14 +399,35 @@ def _unify(con, files: list[str], kind: str, hive: bool) -> dict[str, str]:
     return casts
 
 
-def open_source(data, *, threads: int | None = None) -> Source:
+def open_source(data, *, threads: int | None = None, where: str | None = None) -> Source:
     """Open any supported source as a :class:`Source`.
 
     ``data``: a path, glob or list of Parquet/CSV files, a directory (hive partitions
     are detected), ``tg.sql(...)``, a DuckDB relation, a pyarrow Table or
     RecordBatchReader, or a pandas/polars DataFrame. A RecordBatchReader can be read
     only once, so it is first written to a scratch Parquet file (bounded memory).
+    ``where``: a SQL condition; only the rows that meet it are read (DataError naming the
+    condition when DuckDB cannot apply it).
     """
+    source = _opened(data, threads)
+    if not where:
+        return source
+    try:
+        relation = source.relation.filter(where)
+    except duckdb.Error as exc:
+        if source is not data:
+            source.close()
+        raise DataError(f"the filter {clip(where, 300)!r} cannot be applied to "
+                        f"{source.label}: {clip(exc)}") from None
+    scratch = None
+    if source is not data:  # the filtered source takes over what the opened one owns
+        scratch, source._scratch = source._scratch, None
+    # no file list: a filtered source is not a set of whole files (cluster partitions)
+    return Source(relation, f"{source.label} where {clip(where, 300)}", source.connection,
+                  scratch=scratch)
+
+
+def _opened(data, threads: int | None) -> Source:
     if isinstance(data, Source):
         return data
     if isinstance(data, sql):

@@ -56,6 +56,7 @@ class Family:
     mean_ceiling: float | None = None
     response_rules: tuple[tuple[str, str], ...] = ()  # (SQL condition on {y}, message)
     chosen_by_profile = False  # set on the family :meth:`at` returns: a profiled value
+    variance_explained = False  # True: R² (share of variance accounted for) means something
 
     # ------------------------------------------------------------------ distribution
     def variance(self, mu: np.ndarray) -> np.ndarray:

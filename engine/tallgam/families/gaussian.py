@@ -11,6 +11,7 @@ class Gaussian(Family):
     name = "gaussian"
     default_link = "identity"
     links = ("identity", "log", "inverse")
+    variance_explained = True
 
     def variance(self, mu):
         return np.ones_like(mu)

@@ -1,93 +1,20 @@
-"""Human-readable output of a fit: the text summary and the self-contained HTML report."""
+"""The self-contained HTML report of a fit: one page a pricing reviewer reads in a browser.
+
+Order: the caution, the summary (:mod:`tallgam.outputs.summary`), every rating factor's
+figure and table, the hold-out validation with the check of the hold-out against the
+training data, the training data, the caution again. Titles are the terms' titles (their
+columns, or a spec's ``title``); the tables show the columns a pricing reader needs
+(the input, its training weight, the relativity and its band; on the link scale only for
+links other than log), rounded for people; the files from ``tallgam tables`` keep every
+column and digit. Images are embedded, so the file opens anywhere without a network.
+"""
 
 from __future__ import annotations
 
-import numpy as np
+from tallgam.outputs.formatting import CAUTION, count, fixed, number, relativity
+from tallgam.outputs.summary import profile_text, summary_text
 
-CAUTION = ("Model outputs support, and do not replace, review by a qualified actuary; the use "
-           "of rating factors is governed by local law and regulation.")
-
-
-def _num(x, digits: int = 4) -> str:
-    if x is None or (isinstance(x, float) and not np.isfinite(x)):
-        return "–"
-    ax = abs(x)
-    if ax != 0 and (ax >= 1e6 or ax < 1e-3):
-        return f"{x:.{digits - 1}e}"
-    return f"{x:,.{digits}g}" if ax >= 1e4 else f"{x:.{digits}g}"
-
-
-def summary_text(fit) -> str:
-    """A plain-text summary: header, a table of terms, fit statistics, notes."""
-    m, s = fit.model, fit.statistics
-    crit = s["criterion"].upper() if s["criterion"] != "fixed" else "fixed smoothing"
-    status = "converged" if s["converged"] else "NOT CONVERGED"
-    passes = f"{s['passes']} data pass{'es' if s['passes'] != 1 else ''} after the profile"
-    fitted = s.get("family_parameters") or m.family.params()
-    fam = m.family.name + "".join(f", {k} {v:.4g}" for k, v in fitted.items() if v is not None)
-    lines = [
-        f"tallgam additive model · {fam} family, {m.link.name} link · {crit}",
-        f"  response    {m.response}",
-    ]
-    if m.exposure:
-        lines.append(f"  exposure    {m.exposure}  (offset ln exposure)")
-    if m.offset:
-        lines.append(f"  offset      {m.offset}")
-    if m.weights:
-        lines.append(f"  weights     {m.weights}")
-    if m.where:
-        lines.append(f"  filter      {m.where}")
-    dropped = f", {s['dropped_rows']:,} dropped for missing values" if s.get("dropped_rows") else ""
-    lines += [
-        f"  rows        {s['rows']:,}{dropped}",
-        f"  iterations  {passes}, {status}",
-        "",
-        f"  {'term':<32}{'columns':>8}{'EDF':>9}  {'smoothing λ':<22}",
-    ]
-    for b, sl in zip(fit.bases, fit.design.slices):
-        lam = fit.smoothing.get(b.label)
-        if isinstance(lam, list) and len(lam) > 2:
-            lam_s = f"{len(lam)}: {_num(min(lam), 2)}–{_num(max(lam), 2)}"
-        elif isinstance(lam, list):
-            lam_s = "/".join(_num(v, 3) for v in lam)
-        else:
-            lam_s = _num(lam, 3) if lam is not None else "–"
-        lines.append(f"  {b.label:<32}{sl.stop - sl.start:>8}{fit.edf.get(b.label, 0):>9.2f}"
-                     f"  {lam_s:<22}".rstrip())
-    lines.append(f"  {'all terms':<32}{fit.design.p:>8}{fit.edf['total']:>9.2f}")
-    coef = fit.coefficients
-    unpenalized = {b.label for b in fit.bases if b.n_penalties == 0}
-    shown = [i for i, t in enumerate(coef["term"].to_pylist()) if t in unpenalized]
-    if shown:
-        lines += ["", f"  {'parametric coefficient':<40}{'estimate':>12}{'std. error':>12}"]
-        terms = coef["term"].to_pylist()
-        names = coef["name"].to_pylist()
-        est = coef["estimate"].to_numpy()
-        se = coef["std_error"].to_numpy()
-        per_term: dict[str, int] = {}
-        for i in shown:
-            per_term[terms[i]] = per_term.get(terms[i], 0) + 1
-            if per_term[terms[i]] > 12:
-                continue
-            label = f"{terms[i]} {names[i]}" if terms[i] != "intercept" else "intercept"
-            lines.append(f"  {label[:40]:<40}{_num(est[i]):>12}{_num(se[i]):>12}")
-        for t, k in per_term.items():
-            if k > 12:
-                lines.append(f"  ... {t}: {k - 12} more levels (see fit.coefficients)")
-    lines += [
-        "",
-        f"  deviance {_num(s['deviance'], 6)} against {_num(s['null_deviance'], 6)} for the "
-        f"null model: {100 * s['deviance_explained']:.2f}% explained",
-        f"  scale φ {_num(s['scale'], 5)} · adjusted R² {_num(s['r2_adjusted'], 4)} · "
-        f"AIC {_num(s['aic'], 7)} · {s['criterion']} criterion {_num(s['criterion_value'], 7)}",
-    ]
-    if fit.notes:
-        lines += ["", "  notes:"] + [f"  - {n}" for n in fit.notes]
-    return "\n".join(lines)
-
-
-# ---------------------------------------------------------------------------------------
-# the self-contained HTML report
+__all__ = ["CAUTION", "html_report", "write_report"]
 
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0;
@@ -129,22 +56,26 @@ def _esc(text) -> str:
     return html.escape(str(text))
 
 
-def _cell(v) -> str:
-    if isinstance(v, float):
-        return _esc(_num(v, 5))
-    return _esc(v if v is not None else "–")
-
-
-def _html_table(table, max_rows: int = MAX_TABLE_ROWS) -> str:
-    rows = table.to_pylist()
-    cols = table.column_names
-    shown = rows if len(rows) <= max_rows else rows[:: -(-len(rows) // max_rows)]
-    head = "".join(f"<th>{_esc(c)}</th>" for c in cols)
-    body = "".join("<tr>" + "".join(f"<td>{_cell(r[c])}</td>" for c in cols) + "</tr>"
-                   for r in shown)
-    note = (f'<p class="note">{len(shown)} of {len(rows)} rows shown (evenly spaced); the full '
-            "table is in the tables export.</p>" if len(shown) < len(rows) else "")
+def _html_table(columns: list[tuple[str, list, object]], max_rows: int = MAX_TABLE_ROWS,
+                export: str = "the tables export") -> str:
+    """A table from (header, values, formatter) columns; long ones show evenly spaced rows."""
+    n = len(columns[0][1]) if columns else 0
+    step = -(-n // max_rows) if n > max_rows else 1
+    rows = range(0, n, step)
+    head = "".join(f"<th>{_esc(h)}</th>" for h, _, _ in columns)
+    body = "".join("<tr>" + "".join(f"<td>{_esc(fmt(vals[i]))}</td>" for _, vals, fmt in columns)
+                   + "</tr>" for i in rows)
+    note = (f'<p class="note">{len(rows)} of {n} rows shown (evenly spaced); every row is in '
+            f"{export}.</p>" if len(rows) < n else "")
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>{note}"
+
+
+def _text(v) -> str:
+    return "–" if v is None else str(v)
+
+
+def _number(v) -> str:
+    return number(v, 5) if isinstance(v, (int, float)) else _text(v)
 
 
 def _img(png: bytes, alt: str) -> str:
@@ -154,18 +85,55 @@ def _img(png: bytes, alt: str) -> str:
     return f'<figure><img alt="{_esc(alt)}" src="data:image/png;base64,{data}"></figure>'
 
 
-def _profile_table(fit) -> str:
-    rows = []
-    for name, col in fit.profile.columns.items():
-        if col.kind == "numeric":
-            rows.append((name, "numeric", f"{_num(col.min)} to {_num(col.max)}",
-                         _num(col.mean), _num(col.weighted_median())))
-        else:
-            rows.append((name, "levels", f"{col.distinct} levels", "–", "–"))
-    head = "".join(f"<th>{h}</th>" for h in ("column", "kind", "range", "mean",
-                                             "weighted median"))
-    body = "".join("<tr>" + "".join(f"<td>{_esc(v)}</td>" for v in r) + "</tr>" for r in rows)
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+def _relativity_table(table, weight_label: str, log_link: bool, band: str) -> str:
+    """A term's table for people: inputs, training weight, relativity (or effect) and band."""
+    from tallgam.outputs.plots import STAT_COLUMNS
+
+    d = table.to_pydict()
+    cols = [(c, d[c], _number) for c in table.column_names if c not in STAT_COLUMNS]
+    if "training_weight" in d:
+        cols.append((weight_label, d["training_weight"], lambda v: number(v, 5)))
+    if log_link:
+        cols += [("relativity", d["relativity"], relativity),
+                 (f"{band} band from", d["relativity_lower"], relativity),
+                 ("to", d["relativity_upper"], relativity)]
+    else:
+        cols += [("effect (link scale)", d["difference"], lambda v: number(v, 4)),
+                 (f"{band} band from", d["lower"], lambda v: number(v, 4)),
+                 ("to", d["upper"], lambda v: number(v, 4))]
+    return _html_table(cols)
+
+
+def _validation_tables(v) -> dict[str, str]:
+    """The hold-out tables for people, by section."""
+    name = v.exposure_name
+    d = v.lift.to_pydict()
+    out = {"lift": _html_table([
+        ("band", d["band"], _text), (name, d["exposure"], number),
+        ("actual", d["actual"], number), ("expected", d["expected"], number),
+        ("actual rate", d["actual_rate"], number),
+        ("predicted rate", d["expected_rate"], number),
+        ("actual / expected", d["actual_over_expected"], lambda x: fixed(x, 3))])}
+    if v.double_lift is not None:
+        d = v.double_lift.to_pydict()
+        out["double"] = _html_table([
+            ("band", d["band"], _text), (name, d["exposure"], number),
+            ("actual", d["actual"], number),
+            ("expected, this model", d["expected"], number),
+            ("expected, challenger", d["expected_b"], number),
+            ("actual / expected, this model", d["actual_over_expected"],
+             lambda x: fixed(x, 3)),
+            ("actual / expected, challenger", d["actual_over_expected_b"],
+             lambda x: fixed(x, 3))])
+    for column, table in v.actual_vs_expected.items():
+        d = table.to_pydict()
+        first = ([(column, d["band"], _text)] if "band" in d else
+                 [(f"{column} from", d["band_from"], _number), ("to", d["band_to"], _number)])
+        out[f"ave:{column}"] = _html_table(first + [
+            ("rows", d["rows"], count), (name, d["exposure"], number),
+            ("actual", d["actual"], number), ("expected", d["expected"], number),
+            ("actual / expected", d["actual_over_expected"], lambda x: fixed(x, 3))])
+    return out
 
 
 def html_report(fit, validation=None, *, title: str | None = None, check=None) -> str:
@@ -175,64 +143,83 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
 
     log_link = fit.model.link.multiplicative
     rel = fit.relativities()
-    title = title or f"{fit.model.family.name} model of {fit.model.response}"
+    band = f"{100 * rel.level:g}%"
+    title = title or f"Model of {fit.model.response}"
+    prov = fit.provenance or {}
     parts = [f"<h1>{_esc(title)}</h1>",
-             f'<p class="meta">tallgam {_esc(fit.provenance.get("tallgam_version", ""))} · '
-             f'fitted {_esc(fit.provenance.get("fitted_at", ""))} · '
-             f'{fit.statistics["rows"]:,} training rows</p>',
+             f'<p class="meta">{_esc(fit.model.family.name)} family, '
+             f"{_esc(fit.model.link.name)} link · {count(fit.statistics['rows'])} training "
+             f'rows · fitted {_esc(prov.get("fitted_at", "?"))} by tallgam '
+             f'{_esc(prov.get("tallgam_version", "?"))}</p>',
              f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
-             '<nav><a href="#summary">Summary</a><a href="#terms">Terms</a>'
-             '<a href="#validation">Validation</a><a href="#data">Data</a></nav>',
-             '<h2 id="summary">Summary</h2>', f"<pre>{_esc(summary_text(fit))}</pre>"]
+             '<nav><a href="#summary">Summary</a><a href="#terms">Rating factors</a>'
+             '<a href="#validation">Validation</a><a href="#data">Training data</a></nav>',
+             '<h2 id="summary">Summary</h2>',
+             f"<pre>{_esc(summary_text(fit, caution=False))}</pre>"]
     if rel.base_rate is not None:
-        parts.append(f"<p>Base rate at the reference point: <strong>{rel.base_rate:.6g}"
-                     "</strong> per unit of exposure; every relativity below multiplies it.</p>")
-    parts.append('<h2 id="terms">Terms</h2>')
+        parts.append(f"<p>Base rate at the reference point: <strong>"
+                     f"{number(rel.base_rate, 5)}</strong>"
+                     + (" per unit of exposure" if fit.model.exposure else "")
+                     + "; every relativity below multiplies it.</p>")
+    parts.append('<h2 id="terms">Rating factors</h2>')
     for label, table in rel.tables.items():
-        parts.append(f"<h3>{_esc(label)}</h3>")
-        ref = rel.references.get(label, {})
+        basis = fit.term(label)[0]
+        name = rel.titles.get(label, label)
+        parts.append(f"<h3>{_esc(name)} <span class=\"note\">{_esc(basis.kind)}</span></h3>")
+        ref = {k: v for k, v in rel.references.get(label, {}).items() if v is not None}
         if ref:
-            shown = ", ".join(f"{k} = {v}" for k, v in ref.items() if v is not None)
-            if shown:
-                parts.append(f'<p class="note">reference: {_esc(shown)}</p>')
-        keys = [c for c in table.column_names if c not in plots.STAT_COLUMNS]
-        if len(keys) == 2 and fit.term(label)[0].drawn_as == "surface":
-            fig = plots.surface_figure(table, label, log_link=log_link)
+            shown = ", ".join(f"{k} {number(v, 6) if isinstance(v, float) else v}"
+                              for k, v in ref.items())
+            parts.append(f'<p class="note">reference (relativity 1): {_esc(shown)}</p>')
+        if basis.drawn_as == "surface":
+            fig = plots.surface_figure(table, name, log_link=log_link)
         else:
-            fig = plots.effect_figure(table, label, log_link=log_link)
-        parts.append(_img(plots.to_png(fig), f"effect of {label}"))
-        parts.append(_html_table(table))
+            point = [v for k, v in ref.items() if isinstance(v, float)]
+            prof = fit.profile.columns.get(basis.inputs[0]) if basis.inputs else None
+            histogram = (prof.values, prof.mass) if (
+                prof is not None and prof.kind == "numeric" and prof.distinct
+                and prof.mass is not None) else None
+            fig = plots.effect_figure(table, name, log_link=log_link,
+                                      weight_label=rel.weight_label,
+                                      reference=point[0] if len(point) == 1 else None,
+                                      histogram=histogram)
+        parts.append(_img(plots.to_png(fig), f"effect of {name}"))
+        parts.append(_relativity_table(table, rel.weight_label, log_link, band))
     parts.append('<h2 id="validation">Validation</h2>')
     if validation is None:
         parts.append('<p class="note">No hold-out data was given; run <code>tallgam report '
-                     "MODEL --data HOLDOUT</code> to add lift, Gini and actual-versus-expected "
+                     "MODEL HOLDOUT -o REPORT.html</code> (with <code>--where</code> to pick "
+                     "the hold-out rows) to add lift, Gini and actual-versus-expected "
                      "tables.</p>")
     else:
         v = validation
+        tables = _validation_tables(v)
+        rate = "rate per unit of exposure" if v.exposure_name == "exposure" else \
+            f"mean per unit of {v.exposure_name}"
         parts.append(f"<pre>{_esc(v.summary())}</pre>")
         parts.append('<div class="grid">'
-                     + _img(plots.to_png(plots.lift_figure(v.lift)), "lift chart")
+                     + _img(plots.to_png(plots.lift_figure(v.lift, rate)), "lift chart")
                      + _img(plots.to_png(plots.lorenz_figure(v.lorenz, v.gini)), "Lorenz curve")
                      + "</div>")
-        parts.append(_html_table(v.lift))
+        parts.append(tables["lift"])
         if v.double_lift is not None:
             parts.append("<h3>Double lift against the challenger</h3>")
             parts.append(_img(plots.to_png(plots.double_lift_figure(v.double_lift)),
                               "double lift"))
-            parts.append(_html_table(v.double_lift))
+            parts.append(tables["double"])
+        kinds = {c: k for b in fit.bases for c, k in b.spec.input_kinds().items()}
         for column, table in v.actual_vs_expected.items():
-            parts.append(f"<h3>Actual versus expected by {_esc(column)}</h3>")
-            parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, column)),
-                              f"actual versus expected by {column}"))
-            parts.append(_html_table(table))
+            ordered = kinds.get(column) == "numeric"
+            parts.append(f"<h3>Actual over expected by {_esc(column)}</h3>")
+            parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(
+                table, column, ordered=ordered, exposure_name=v.exposure_name)),
+                f"actual over expected by {column}"))
+            parts.append(tables[f"ave:{column}"])
     if check is not None:
         parts.append('<h3 id="check">The hold-out against the training data</h3>')
         parts.append(f"<pre>{_esc(check.summary())}</pre>")
     parts.append('<h2 id="data">Training data</h2>')
-    parts.append(f"<p>{fit.profile.rows:,} rows"
-                 + (f", filter <code>{_esc(fit.model.where)}</code>" if fit.model.where else "")
-                 + ".</p>")
-    parts.append(_profile_table(fit))
+    parts.append(f"<pre>{_esc(profile_text(fit))}</pre>")
     parts.append(f'<div class="caution">{_esc(CAUTION)}</div>')
     body = "\n".join(parts)
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
@@ -241,16 +228,17 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
             f"<body><main>{body}</main><script>{_CHECK_SCRIPT}</script></body></html>\n")
 
 
-def write_report(fit, path, *, data=None, against=None, title: str | None = None,
-                 progress=False) -> str:
-    """Validate on ``data`` (if given) and write the HTML report atomically; returns path.
-    The output path is checked first, so a bad one fails before the validation pass."""
+def write_report(fit, path, *, data=None, where: str | None = None, against=None,
+                 title: str | None = None, progress=False) -> str:
+    """Validate on ``data`` (if given; the rows meeting the SQL condition ``where``) and
+    write the HTML report atomically; returns the path. The output path is checked first,
+    so a bad one fails before the validation pass."""
     from tallgam.atomic import check_target, write_text
 
     check_target(path)
     validation = check = None
     if data is not None:
-        validation = fit.validate(data, against=against, progress=progress)
-        check = fit.check(data)
+        validation = fit.validate(data, against=against, where=where, progress=progress)
+        check = fit.check(data, where=where)
     write_text(path, html_report(fit, validation, title=title, check=check))
     return str(path)

@@ -33,7 +33,8 @@ class FitResult:
     smoothing : dict, the smoothing parameter λ of every penalized term (a list when a term
         has several penalties), on the scale of its penalty (∫f''² for curvature).
     scale : the dispersion φ (1 for poisson/binomial/negative binomial).
-    deviance, null_deviance, deviance_explained, r2_adjusted, loglik, aic : fit statistics.
+    deviance, null_deviance, deviance_explained, r2_adjusted (gaussian only), loglik, aic :
+        fit statistics.
     criterion : (name, value) of the smoothing criterion at the optimum.
     converged, passes, history : how the iterations went (data passes exclude the profile).
     covariance : the Bayesian covariance of the raw coefficients (:class:`Covariance`);
@@ -90,7 +91,8 @@ class FitResult:
             "null_deviance": null,
             "deviance_explained": 1.0 - dev / null if null > 0 else float("nan"),
             "r2_adjusted": (1.0 - (sc["response_ss"] / max(n - edf["total"], 1.0))
-                            / (tss / max(n - 1.0, 1.0))) if tss > 0 else float("nan"),
+                            / (tss / max(n - 1.0, 1.0)))
+            if tss > 0 and fam.variance_explained else None,
             "scale": fs.scale,
             "loglik": fs.loglik,
             "aic": -2.0 * fs.loglik + 2.0 * (edf["total"] + p_scale),
@@ -134,8 +136,12 @@ class FitResult:
         return self.statistics["deviance_explained"]
 
     @property
-    def r2_adjusted(self) -> float:
-        return self.statistics["r2_adjusted"]
+    def r2_adjusted(self) -> float | None:
+        """R² with the EDF taken into account; None where a share of variance means
+        nothing (every family but the gaussian)."""
+        if not self.model.family.variance_explained:
+            return None
+        return self.statistics.get("r2_adjusted")
 
     @property
     def loglik(self) -> float:
@@ -256,8 +262,9 @@ class FitResult:
         return values
 
     def score(self, data, output_path, *, cluster=None, **kwargs):
-        """Stream predictions of ``data`` to a Parquet file (see
-        :func:`tallgam.outputs.scoring.score_to_parquet` for the options).
+        """Stream predictions of ``data`` to a Parquet or CSV file, by the extension of
+        ``output_path`` (see :func:`tallgam.outputs.scoring.score_to_file` for the options,
+        ``where`` among them).
 
         With ``cluster`` (a ``distributed.Client``, scheduler address or Dask cluster
         object) the partitions of ``data`` are scored on the cluster's workers and
@@ -266,10 +273,15 @@ class FitResult:
         if cluster is not None:
             from tallgam.passes.cluster import score_to_directory
 
-            return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
-        from tallgam.outputs.scoring import score_to_parquet
+            if kwargs.pop("where", None):
+                raise SpecError("scoring on a cluster reads whole files, so it takes no row "
+                                "filter (where); write the filtered rows to files first, or "
+                                "score without the cluster")
 
-        return score_to_parquet(self, data, output_path, **kwargs)
+            return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
+        from tallgam.outputs.scoring import score_to_file
+
+        return score_to_file(self, data, output_path, **kwargs)
 
     # ------------------------------------------------------------------ effects
     def effect(self, term: str, *, points: int = 200, level: float = 0.95) -> pa.Table:
@@ -304,25 +316,30 @@ class FitResult:
                         relativity_upper=np.exp(est + z * se))
         return pa.table(cols)
 
-    def relativities(self, *, reference: dict | None = None, level: float = 0.95):
+    def relativities(self, *, reference: dict | None = None, level: float = 0.95,
+                     data=None, where: str | None = None):
         """Relativity tables of every term, with the base rate (see
         :mod:`tallgam.outputs.tables`).
 
         ``reference`` overrides the reference value of numeric columns (default: the
-        exposure-weighted median of the training data)."""
+        exposure-weighted median of the training data). With ``data`` (any source, the
+        rows meeting the SQL condition ``where``) the tables also give that data's exposure
+        at each row (``data_weight``)."""
         from tallgam.outputs.tables import relativity_tables
 
-        return relativity_tables(self, reference=reference, level=level)
+        return relativity_tables(self, reference=reference, level=level, data=data,
+                                 where=where)
 
-    def validate(self, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
-                 progress=False, tuning=None):
-        """Hold-out statistics on ``data``: deviance, Gini, lift, actual versus expected by
-        rating factor; with ``against`` (another fit) the double lift. Streams through
-        DuckDB with bounded memory (see :mod:`tallgam.outputs.validation`)."""
+    def validate(self, data, *, against=None, where: str | None = None,
+                 batch_rows: int = DEFAULT_BATCH_ROWS, progress=False, tuning=None):
+        """Hold-out statistics on ``data`` (the rows meeting the SQL condition ``where``,
+        when given): deviance, Gini, lift, actual versus expected by rating factor; with
+        ``against`` (another fit) the double lift. Streams through DuckDB with bounded
+        memory (see :mod:`tallgam.outputs.validation`)."""
         from tallgam.outputs.validation import validate
 
-        return validate(self, data, against=against, batch_rows=batch_rows, progress=progress,
-                        tuning=tuning)
+        return validate(self, data, against=against, where=where, batch_rows=batch_rows,
+                        progress=progress, tuning=tuning)
 
     def check(self, data, *, where: str | None = None):
         """New data against the training profile: rows outside the training range,
@@ -335,15 +352,17 @@ class FitResult:
 
     # ------------------------------------------------------------------ output
     def summary(self) -> str:
-        from tallgam.outputs.report import summary_text
+        """The summary for a pricing reviewer (see :mod:`tallgam.outputs.summary`)."""
+        from tallgam.outputs.summary import summary_text
 
         return summary_text(self)
 
     def __repr__(self) -> str:
         s = self.statistics
+        ratio = s["deviance"] / s["null_deviance"] if s["null_deviance"] else float("nan")
         return (f"<tallgam FitResult: {self.model.family.name}/{self.model.link.name}, "
                 f"{len(self.bases) - 1} terms, {s['rows']} rows, EDF {self.edf['total']:.2f}, "
-                f"deviance explained {100 * s['deviance_explained']:.1f}%>")
+                f"deviance ratio {ratio:.4f}>")
 
     def to_sql(self, output: str = "response", *, with_offset: bool = True) -> str:
         """One DuckDB SQL expression reproducing ``predict`` (see :mod:`tallgam.sqlexport`)."""

@@ -26,6 +26,7 @@ from tallgam.passes.design import Design, batch_columns
 
 OUTPUTS = ("response", "link", "terms")
 UNSEEN = ("error", "base")
+FILE_FORMATS = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv"}
 
 
 @dataclass
@@ -44,7 +45,8 @@ class ScoreReport:
         for col, n in self.unseen.items():
             warnings.warn(TallgamWarning(
                 f"{n} of {self.rows} row(s) have a level of {col!r} not seen in training; "
-                "they were given the base level's effect (unseen='base')"), stacklevel=4)
+                "they were given the base level's effect (unseen set to 'base')"),
+                stacklevel=4)
 
 
 class Scorer:
@@ -155,7 +157,7 @@ class Scorer:
                 if arr.null_count:  # NULL is no level, so not an unseen one either
                     raise DataError(f"column {c!r} has {arr.null_count} NULL/NaN value(s) in a "
                                     f"batch of {n} rows to score; a missing value is not a level"
-                                    " (unseen='base' does not apply): fill or filter them first")
+                                    " (unseen 'base' does not apply): fill or filter them first")
                 missing = _unknown(arr, levels)
                 if missing.any():
                     if self.unseen == "error":
@@ -163,8 +165,9 @@ class Scorer:
                         raise DataError(
                             f"{int(missing.sum())} row(s) in a batch of {n} have levels of "
                             f"{c!r} not seen in training (e.g. "
-                            f"{', '.join(shorten(v) for v in ex)}); pass unseen='base' to give "
-                            "them the base level's effect (zero)")
+                            f"{', '.join(shorten(v) for v in ex)}); to give them the base "
+                            "level's effect (zero), set unseen to 'base' (--unseen base on "
+                            "the command line)")
                     self.report.unseen[c] += int(missing.sum())
         if O in cols and not np.all(np.isfinite(cols[O])):
             raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
@@ -184,25 +187,40 @@ def _unknown(arr, levels: list[str]) -> np.ndarray:
     return ~found.fill_null(False).to_numpy(zero_copy_only=False)
 
 
-def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str] = (),
-                     terms: bool = False, se: bool = False, with_offset: bool = True,
-                     unseen: str = "error", batch_rows: int = 1_000_000,
-                     progress=False) -> ScoreReport:
-    """Stream predictions of every row of ``data`` into a Parquet file.
+def file_format(path) -> str:
+    """``"parquet"`` or ``"csv"`` from an output file's extension (SpecError otherwise)."""
+    import os
+
+    ext = os.path.splitext(os.fspath(path))[1].lower()
+    if ext not in FILE_FORMATS:
+        raise SpecError(f"cannot tell the output format of {shorten(os.fspath(path))} from "
+                        "its extension; name it .parquet or .csv")
+    return FILE_FORMATS[ext]
+
+
+def score_to_file(fit, data, output_path, *, keep: tuple[str, ...] | list[str] = (),
+                  terms: bool = False, se: bool = False, with_offset: bool = True,
+                  unseen: str = "error", batch_rows: int = 1_000_000, where: str | None = None,
+                  progress=False) -> ScoreReport:
+    """Stream predictions of every row of ``data`` (those meeting the SQL condition
+    ``where``, when given) into a Parquet or CSV file, by the extension of
+    ``output_path`` (.parquet, .pq or .csv; SpecError for any other).
 
     Columns: the ``keep`` columns, ``prediction`` (response scale), ``link``; with ``se``
     ``prediction_se`` and ``link_se``; with ``terms`` one ``term:<label>`` column per
-    term. The file appears only when complete: rows go to a temporary file in the same
+    term. CSV numbers are written in full (the shortest text that reads back as the same
+    value). The file appears only when complete: rows go to a temporary file in the same
     folder, renamed at the end; an error or a kill leaves no output behind.
     """
     from tallgam.atomic import check_target, replacing
     from tallgam.data.sources import open_source
     from tallgam.progress import Event, make_callback
 
+    fmt = file_format(output_path)
     batch_rows = RunOptions(batch_rows=batch_rows).batch_rows
     callback = make_callback(progress)
     check_target(output_path)   # a bad output path fails before any row is read
-    source = open_source(data)
+    source = open_source(data, where=where)
     owned = source is not data
     try:
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
@@ -212,7 +230,7 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
             callback(Event("advance", "scoring", rows=done))
         with replacing(output_path, "score") as tmp:
             done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
-                                on_rows=advance)
+                                on_rows=advance, fmt=fmt)
         callback(Event("end", "scoring", rows=done))
     finally:
         if owned:
@@ -222,12 +240,18 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
 
 
 def write_scores(scorer: Scorer, path: str, *, se: bool, terms: bool, batch_rows: int,
-                 on_rows=None, write_empty: bool = True, stop=None) -> int:
-    """Write the predictions of ``scorer``'s source to the Parquet file ``path`` (the
-    caller gives a temporary name and renames it). Returns the rows written. Without rows,
-    an empty file with the columns is written, or none when ``write_empty`` is False.
-    ``stop()``, checked before every batch, may raise to abandon the file."""
+                 on_rows=None, write_empty: bool = True, stop=None,
+                 fmt: str = "parquet") -> int:
+    """Write the predictions of ``scorer``'s source to the file ``path``, Parquet or
+    (``fmt="csv"``) CSV; the caller gives a temporary name and renames it. Returns the
+    rows written. Without rows, an empty file with the columns is written, or none when
+    ``write_empty`` is False. ``stop()``, checked before every batch, may raise to abandon
+    the file."""
+    import pyarrow.csv as pacsv
     import pyarrow.parquet as pq
+
+    def open_writer(schema):
+        return pacsv.CSVWriter(path, schema) if fmt == "csv" else pq.ParquetWriter(path, schema)
 
     fit = scorer.fit
     writer = None
@@ -247,14 +271,14 @@ def write_scores(scorer: Scorer, path: str, *, se: bool, terms: bool, batch_rows
                     cols[f"term:{b.label}"] = pa.array(arrays[b.label])
             table = pa.table(cols)
             if writer is None:
-                writer = pq.ParquetWriter(path, table.schema)
+                writer = open_writer(table.schema)
             writer.write_table(table)
             done += table.num_rows
             if on_rows is not None:
                 on_rows(done)
         if writer is None and write_empty:  # no rows: a valid, empty file with the columns
             names = list(scorer.keep) + ["prediction", "link"]
-            writer = pq.ParquetWriter(path, pa.schema([(n, pa.float64()) for n in names]))
+            writer = open_writer(pa.schema([(n, pa.float64()) for n in names]))
         if writer is not None:
             writer.close()
             writer = None

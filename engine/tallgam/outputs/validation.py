@@ -35,6 +35,26 @@ from tallgam.errors import DataError
 from tallgam.options import DEFAULT_BATCH_ROWS, RunOptions, Tuning
 
 BANDS = 10
+NOTES = """Hold-out validation tables (CSV; numbers in full)
+
+summary.txt          the figures as printed: deviance, Gini, actual over expected, lift
+lift.csv             ten bands of equal {exposure} by predicted rate (lowest first): rows,
+                     {exposure}, actual, expected, actual_rate, expected_rate,
+                     actual_over_expected; from_value/to_value: the predicted rates in the band
+lorenz.csv           the ordered Lorenz curve: cumulative share of {exposure} (exposure_share)
+                     against cumulative share of actual (actual_share), lowest rate first
+double_lift.csv      (with a challenger) ten bands by the ratio of the two predictions;
+                     expected_b and actual_over_expected_b are the challenger's
+actual_vs_expected_<column>.csv
+                     actual over expected per level, or per band of equal {exposure}
+                     (band_from, band_to) of a numeric rating factor; bands add up to totals
+
+actual = Σ weight × response; expected = Σ weight × prediction (exposure included); the
+column exposure holds the {exposure} (1 per row when the model has neither exposure nor
+weights).
+
+Caution: {caution}
+"""
 LORENZ_POINTS = 201
 
 
@@ -56,33 +76,89 @@ class Validation:
     double_lift: pa.Table | None = None
     challenger_gini: float | None = None
     challenger_deviance: float | None = None
+    exposure_name: str = "exposure"  # what ``exposure`` sums: exposure, weight or rows
+
+    @property
+    def deviance_ratio(self) -> float:
+        """Hold-out deviance over that of one flat rate (below 1: the model does better)."""
+        return self.deviance / self.null_deviance if self.null_deviance > 0 else np.nan
 
     @property
     def deviance_explained(self) -> float:
-        return 1.0 - self.deviance / self.null_deviance if self.null_deviance > 0 else np.nan
+        """1 − :attr:`deviance_ratio`."""
+        return 1.0 - self.deviance_ratio
 
     @property
     def actual_over_expected(self) -> float:
         return self.actual / self.expected if self.expected else np.nan
 
+    def tables(self) -> dict[str, pa.Table]:
+        """Every table by file name: lift, lorenz, double_lift (with a challenger) and
+        actual_vs_expected_<column> per rating factor."""
+        from tallgam.outputs.tables import file_stem
+
+        named = {"lift": self.lift, "lorenz": self.lorenz}
+        if self.double_lift is not None:
+            named["double_lift"] = self.double_lift
+        for col, table in self.actual_vs_expected.items():
+            named[f"actual_vs_expected_{file_stem(col)}"] = table
+        return named
+
+    def write(self, folder) -> list[str]:
+        """Write every table as CSV (numbers in full), ``summary.txt`` (the summary) and
+        ``notes.txt`` (the columns explained, and the caution) into ``folder``; returns
+        the paths. Each file appears whole or not at all."""
+        import pyarrow.csv as pacsv
+
+        from tallgam.atomic import make_folder, replacing, write_text
+        from tallgam.outputs.formatting import CAUTION
+
+        make_folder(folder)
+        paths = []
+        for name, table in self.tables().items():
+            path = os.path.join(folder, f"{name}.csv")
+            with replacing(path) as tmp:
+                pacsv.write_csv(table, tmp)
+            paths.append(path)
+        for name, text in (("summary.txt", self.summary() + "\n"),
+                           ("notes.txt", NOTES.format(exposure=self.exposure_name,
+                                                      caution=CAUTION))):
+            path = os.path.join(folder, name)
+            write_text(path, text)
+            paths.append(path)
+        return paths
+
     def summary(self) -> str:
-        lines = [
-            f"hold-out: {self.rows:,} rows, exposure {self.exposure:,.6g}",
-            f"  actual {self.actual:,.6g} · expected {self.expected:,.6g} · "
-            f"actual/expected {self.actual_over_expected:.4f}",
-            f"  deviance {self.deviance:,.6g} against {self.null_deviance:,.6g} for a flat "
-            f"rate: {100 * self.deviance_explained:.2f}% explained",
-            f"  Gini {self.gini:.4f} (1 = perfect ranking; ordered-Lorenz Gini "
-            f"{self.gini_raw:.4f})",
+        """The hold-out figures as text for people."""
+        from tallgam.outputs.formatting import fixed, number
+
+        exposure_name = self.exposure_name
+        rows = [
+            ("rows", number(self.rows)),
+            (exposure_name, number(self.exposure)),
+            ("actual", number(self.actual)),
+            ("expected", number(self.expected)),
+            ("actual / expected", fixed(self.actual_over_expected, 4)),
+            ("deviance", f"{number(self.deviance, 6)}, against {number(self.null_deviance, 6)} "
+                         f"for one flat rate (ratio {fixed(self.deviance_ratio, 4)})"),
+            ("Gini, normalised", f"{fixed(self.gini, 4)}  (1 = the best possible ordering of "
+                                 "these policies)"),
+            ("Gini, raw", f"{fixed(self.gini_raw, 4)}  (1 − 2 × area under the ordered "
+                          "Lorenz curve)"),
         ]
         if self.challenger_gini is not None:
-            lines.append(f"  challenger: Gini {self.challenger_gini:.4f}, deviance "
-                         f"{self.challenger_deviance:,.6g}")
-        lines += ["", "  lift by band of predicted rate (equal exposure)",
-                  f"  {'band':>4}{'exposure':>14}{'actual rate':>14}{'predicted':>14}{'A/E':>8}"]
+            rows += [("challenger deviance", number(self.challenger_deviance, 6)),
+                     ("challenger Gini, normalised", fixed(self.challenger_gini, 4))]
+        width = max(len(k) for k, _ in rows) + 2
+        lines = ["Hold-out"] + [f"  {k:<{width}}{v}" for k, v in rows]
+        lines += ["", f"Lift: ten bands of equal {exposure_name} by predicted rate",
+                  f"  {'band':>4}{exposure_name:>14}{'actual rate':>14}{'predicted rate':>16}"
+                  f"{'actual / expected':>19}"]
         for r in self.lift.to_pylist():
-            lines.append(f"  {r['band']:>4}{r['exposure']:>14,.6g}{r['actual_rate']:>14.6g}"
-                         f"{r['expected_rate']:>14.6g}{r['actual_over_expected']:>8.3f}")
+            lines.append(f"  {r['band']:>4}{number(r['exposure']):>14}"
+                         f"{number(r['actual_rate'], zeros=True):>14}"
+                         f"{number(r['expected_rate'], zeros=True):>16}"
+                         f"{fixed(r['actual_over_expected'], 3):>19}")
         return "\n".join(lines)
 
 
@@ -161,19 +237,20 @@ def _score_to_scratch(fit, source, path, challenger, challenger_source, batch_ro
     return sums
 
 
-def validate(fit, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
-             progress=False, scratch_dir: str | None = None,
-             tuning: Tuning | None = None) -> Validation:
-    """Hold-out statistics of ``fit`` on ``data`` (any source); ``against`` a second fitted
-    model for the double lift. Memory is bounded; a scratch Parquet file (removed at the
-    end) holds one row per hold-out row; DuckDB's working memory for the tables is
-    ``tuning.tables_memory`` (it spills to disk beyond)."""
+def validate(fit, data, *, against=None, where: str | None = None,
+             batch_rows: int = DEFAULT_BATCH_ROWS, progress=False,
+             scratch_dir: str | None = None, tuning: Tuning | None = None) -> Validation:
+    """Hold-out statistics of ``fit`` on ``data`` (any source; only rows meeting the SQL
+    condition ``where`` when given); ``against`` a second fitted model for the double
+    lift. Memory is bounded; a scratch Parquet file (removed at the end) holds one row per
+    hold-out row; DuckDB's working memory for the tables is ``tuning.tables_memory`` (it
+    spills to disk beyond)."""
     options = RunOptions(batch_rows=batch_rows, progress=progress, tuning=tuning)
     batch_rows = options.batch_rows
-    source = open_source(data)
+    source = open_source(data, where=where)
     owned = source is not data
     # the challenger streams the same rows side by side, on a connection of its own
-    second = open_source(data) if against is not None else None
+    second = open_source(data, where=where) if against is not None else None
     path = None
     try:
         path = new_scratch_file("holdout", ".parquet", scratch_dir)
@@ -210,7 +287,9 @@ def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Valid
                      expected=float(expected), deviance=sums["deviance"],
                      null_deviance=null_dev, gini=gini_raw / perfect if perfect else np.nan,
                      gini_raw=gini_raw, lorenz=lorenz, lift=lift,
-                     actual_vs_expected=ave)
+                     actual_vs_expected=ave,
+                     exposure_name=("exposure" if fit.model.exposure else
+                                    "weight" if fit.model.weights else "rows"))
     if challenger is not None:
         con.execute("CREATE VIEW hb AS SELECT *, expected_b / exposure AS rate_b, "
                     "expected / expected_b AS ratio FROM h")

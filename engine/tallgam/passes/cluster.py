@@ -521,7 +521,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
     none) into a hidden temporary directory beside ``output_dir``, under a temporary name
     renamed when complete. The directory is renamed to ``output_dir`` only when every part
     succeeded; on any failure the temporary directory is removed, so a failed run leaves no
-    output. Columns as in :func:`score_to_parquet`; rows in input order within each part.
+    output. Columns as in :func:`score_to_file`; rows in input order within each part.
     An existing ``output_dir`` is replaced only if it holds nothing but part files.
     """
     import re

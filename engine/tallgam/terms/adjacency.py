@@ -60,7 +60,8 @@ class AdjacencySpec(TermSpec):
         return AdjacencyBasis(self, levels, graph_edges(graph, levels), set(data_levels))
 
 
-def adjacency(column: str, *, neighbours, smoothing: float | None = None) -> AdjacencySpec:
+def adjacency(column: str, *, neighbours, smoothing: float | None = None,
+              title: str | None = None) -> AdjacencySpec:
     """Territory smoothing: one coefficient per region, penalized by the differences
     between neighbouring regions.
 
@@ -73,12 +74,14 @@ def adjacency(column: str, *, neighbours, smoothing: float | None = None) -> Adj
         Parquet/CSV file of neighbour pairs, or such a dict.
     smoothing : float, optional
         A fixed λ; ``None`` lets the criterion choose.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     AdjacencySpec
     """
-    return AdjacencySpec(column, neighbours=neighbours, smoothing=smoothing)
+    return AdjacencySpec(column, neighbours=neighbours, smoothing=smoothing, title=title)
 
 
 def read_neighbours(source, where: str) -> dict[str, list[str]]:

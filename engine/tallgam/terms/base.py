@@ -21,7 +21,7 @@ kind defined entirely outside the package).
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import MISSING, asdict, dataclass, fields
+from dataclasses import MISSING, asdict, dataclass, field, fields
 from typing import ClassVar
 
 import numpy as np
@@ -37,6 +37,7 @@ RENAMED_OPTIONS = {"select": "removable"}  # older model files' option names
 OPTION_TYPES: dict[str, tuple] = {  # spec-file value types of options kinds share
     "kind": (str,), "column": (str,), "columns": (list,), "size": (int, list),
     "knots": (str, list), "smoothing": (int, float, list), "removable": (bool,),
+    "title": (str,),
 }
 
 
@@ -46,7 +47,12 @@ OPTION_TYPES: dict[str, tuple] = {  # spec-file value types of options kinds sha
 
 @dataclass(frozen=True)
 class TermSpec:
-    """Base of the term requests. Subclasses are frozen dataclasses with a ``kind``."""
+    """Base of the term requests. Subclasses are frozen dataclasses with a ``kind``.
+
+    Every kind takes ``title``, keyword only: the name people read in summaries, charts
+    and table headers (default: the term's columns, see :attr:`Basis.title`)."""
+
+    title: str | None = field(default=None, kw_only=True)
 
     kind = "term"
     removable = False  # an extra penalty lets the criterion remove the term (see spline)
@@ -70,9 +76,9 @@ class TermSpec:
     def check_with(self, terms: Sequence[TermSpec], criterion: str) -> None:
         """SpecError when this term cannot be fitted beside ``terms`` with ``criterion``."""
         if self.removable and criterion == "fixed":
-            raise SpecError(f"{self.label}: removable=True adds a penalty whose smoothing the "
-                            "criterion chooses; use criterion='reml' (a term's own "
-                            "smoothing= stays fixed)")
+            raise SpecError(f"{self.label}: removable adds a penalty whose smoothing the "
+                            "criterion chooses; set criterion to \"reml\" (a term's own "
+                            "smoothing stays fixed)")
 
     def build(self, profile: DataProfile) -> Basis:
         raise NotImplementedError
@@ -96,6 +102,8 @@ class TermSpec:
     def to_dict(self) -> dict:
         out = {"kind": self.kind}
         for k, v in asdict(self).items():
+            if k == "title" and v is None:  # files without a title stay as they were
+                continue
             out[k] = list(v) if isinstance(v, tuple) else v
         return out
 
@@ -139,7 +147,11 @@ class Basis:
 
     @property
     def title(self) -> str:
-        """A name for people: the input columns."""
+        """A name for people: the spec's ``title``, else :meth:`default_title`."""
+        return self.spec.title or self.default_title()
+
+    def default_title(self) -> str:
+        """The input columns, joined by ×."""
         return " × ".join(self.inputs) if self.inputs else self.label
 
     @property
@@ -297,8 +309,7 @@ class InterceptBasis(Basis):
     def __init__(self, spec: TermSpec | None = None):
         super().__init__(spec or InterceptSpec())
 
-    @property
-    def title(self) -> str:
+    def default_title(self) -> str:
         return "intercept"
 
     @property

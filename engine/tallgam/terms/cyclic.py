@@ -60,8 +60,8 @@ class CyclicSpec(TermSpec):
                 np.concatenate([[origin], wrapped[order], [origin + period]]),
                 np.concatenate([[0.0], fp.rows[order], [0.0]]), size + 3)
             if len(inner) < size - 1:
-                raise DataError(f"{where}: ties leave too few distinct quantile knots; use "
-                                "knots='uniform'")
+                raise DataError(f"{where}: ties leave too few distinct quantile knots; set "
+                                "knots to \"uniform\"")
             breaks = np.concatenate([[origin], inner, [origin + period]])
         else:
             breaks = origin + period * np.arange(size + 1) / size
@@ -69,7 +69,8 @@ class CyclicSpec(TermSpec):
 
 
 def cyclic(column: str, *, period: float, size: int = 10, origin: float | None = None,
-           knots: str = "uniform", smoothing: float | None = None) -> CyclicSpec:
+           knots: str = "uniform", smoothing: float | None = None,
+           title: str | None = None) -> CyclicSpec:
     """A periodic smooth of a numeric column.
 
     Parameters
@@ -86,13 +87,15 @@ def cyclic(column: str, *, period: float, size: int = 10, origin: float | None =
     knots : {"uniform", "quantile"}, default "uniform"
     smoothing : float, optional
         A fixed smoothing parameter λ; ``None`` lets the criterion choose.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     CyclicSpec
     """
     return CyclicSpec(column, period=period, size=size, origin=origin, knots=knots,
-                      smoothing=smoothing)
+                      smoothing=smoothing, title=title)
 
 
 class CyclicBasis(Basis):

@@ -87,7 +87,8 @@ class CategoricalSpec(TermSpec):
         return CategoricalBasis(self, levels, counts=counts)
 
 
-def categorical(column: str, *, base: str | None = None) -> CategoricalSpec:
+def categorical(column: str, *, base: str | None = None,
+                title: str | None = None) -> CategoricalSpec:
     """One unpenalized coefficient per level of a column, measured from a base level.
 
     Parameters
@@ -97,12 +98,14 @@ def categorical(column: str, *, base: str | None = None) -> CategoricalSpec:
     base : str, optional
         The base level; default the level with the largest total exposure (or weight,
         or rows).
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     CategoricalSpec
     """
-    return CategoricalSpec(column, base=None if base is None else str(base))
+    return CategoricalSpec(column, base=None if base is None else str(base), title=title)
 
 
 class CategoricalBasis(LevelBasis):
@@ -151,7 +154,8 @@ class RandomEffectSpec(TermSpec):
         return RandomEffectBasis(self, levels, counts=counts)
 
 
-def random_effect(column: str, *, smoothing: float | None = None) -> RandomEffectSpec:
+def random_effect(column: str, *, smoothing: float | None = None,
+                  title: str | None = None) -> RandomEffectSpec:
     """One coefficient per level, shrunk towards zero by a ridge penalty λ·Σβ².
 
     With REML, λ is the ratio of the scale to the variance of the level effects (a random
@@ -164,12 +168,14 @@ def random_effect(column: str, *, smoothing: float | None = None) -> RandomEffec
         The level column.
     smoothing : float, optional
         A fixed λ; ``None`` lets the criterion choose.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     RandomEffectSpec
     """
-    return RandomEffectSpec(column, smoothing=smoothing)
+    return RandomEffectSpec(column, smoothing=smoothing, title=title)
 
 
 class RandomEffectBasis(LevelBasis):

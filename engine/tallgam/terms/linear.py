@@ -29,19 +29,21 @@ class LinearSpec(TermSpec):
         return LinearBasis(self, float(fp.mean), float(fp.sd))
 
 
-def linear(column: str) -> LinearSpec:
+def linear(column: str, *, title: str | None = None) -> LinearSpec:
     """A straight-line effect of a numeric column.
 
     Parameters
     ----------
     column : str
         The numeric column; centred and scaled internally, reported per unit.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     LinearSpec
     """
-    return LinearSpec(column)
+    return LinearSpec(column, title=title)
 
 
 class LinearBasis(Basis):

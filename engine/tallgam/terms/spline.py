@@ -101,8 +101,8 @@ class SplineSpec(TermSpec):
     def check_with(self, terms, criterion):
         super().check_with(terms, criterion)
         if self.per and not any(t.input_kinds() == {self.per: "levels"} for t in terms):
-            raise SpecError(f"{self.label} needs the level means too: add "
-                            f"tg.categorical({self.per!r}) to the terms")
+            raise SpecError(f"{self.label} needs the level means too: add a categorical "
+                            f"term of {self.per!r}")
 
     def build(self, profile: DataProfile) -> SplineBasis:
         knots = margin_knots(profile, self.column, self.size, self.knots, self.label)
@@ -122,7 +122,7 @@ class SplineSpec(TermSpec):
 def spline(column: str, size: int = 10, *, knots: str | Sequence[float] | None = None,
            penalty: str = "curvature", smoothing: float | None = None, per: str | None = None,
            multiplier: str | None = None, removable: bool = False,
-           shape: str | None = None) -> SplineSpec:
+           shape: str | None = None, title: str | None = None) -> SplineSpec:
     """A smooth function of a numeric column: a penalized cubic B-spline.
 
     Parameters
@@ -149,13 +149,16 @@ def spline(column: str, size: int = 10, *, knots: str | Sequence[float] | None =
         term altogether (Marra & Wood 2011); its EDF then goes to zero.
     shape : {"increasing", "decreasing", "convex", "concave"}, optional
         The fitted curve keeps that shape everywhere.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the column).
 
     Returns
     -------
     SplineSpec
     """
     return SplineSpec(column, size=size, knots=knots, penalty=penalty, smoothing=smoothing,
-                      per=per, multiplier=multiplier, removable=removable, shape=shape)
+                      per=per, multiplier=multiplier, removable=removable, shape=shape,
+                      title=title)
 
 
 def margin_knots(profile: DataProfile, column: str, size, knots, where: str) -> np.ndarray:
@@ -175,7 +178,7 @@ def margin_knots(profile: DataProfile, column: str, size, knots, where: str) -> 
     if distinct < 4:
         raise DataError(
             f"{where}: {column!r} has only {distinct} distinct value(s); a cubic spline needs "
-            "at least 4. Use tg.categorical or tg.linear for it.")
+            "at least 4. Make it a categorical or a linear term.")
     size = int(size)
     if distinct < size:
         warnings.warn(TallgamWarning(
@@ -233,8 +236,7 @@ class SplineBasis(Basis):
     def range(self) -> tuple[float, float]:
         return float(self.knots[0]), float(self.knots[-1])
 
-    @property
-    def title(self) -> str:
+    def default_title(self) -> str:
         spec = self.spec
         out = spec.column
         if spec.per:

@@ -72,7 +72,7 @@ class SurfaceSpec(TermSpec):
 
 def surface(*columns: str, size: int | Sequence[int] = 5, knots: str | None = None,
             smoothing: float | Sequence[float | None] | None = None,
-            removable: bool = False) -> SurfaceSpec:
+            removable: bool = False, title: str | None = None) -> SurfaceSpec:
     """A smooth surface of two or three numeric columns (e.g. longitude, latitude).
 
     Parameters
@@ -86,13 +86,16 @@ def surface(*columns: str, size: int | Sequence[int] = 5, knots: str | None = No
         Fixed smoothing parameters, one per margin (None: chosen).
     removable : bool, default False
         Add a penalty on the surface's unpenalized part so it can be removed.
+    title : str, optional
+        The name shown in summaries, charts and table headers (default: the columns).
 
     Returns
     -------
     SurfaceSpec
     """
     return SurfaceSpec(tuple(columns), size=size if np.isscalar(size) else tuple(size),
-                       knots=knots, smoothing=smoothing, removable=removable)
+                       knots=knots, smoothing=smoothing, removable=removable,
+                       title=title)
 
 
 class SurfaceBasis(Basis):
