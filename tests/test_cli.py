@@ -66,8 +66,9 @@ def test_fit_show_score_sql(book, tmp_path):
     assert saved["format"] == "tallgam-model" and saved["schema_version"] == 3
 
     shown = run("show", str(model_path)).stdout
-    for text in ("spline(age)", "categorical(region)", "6,000", "training data"):
+    for text in ("age", "region", "6,000", "Training data", "qualified actuary"):
         assert text in shown
+    assert "spline(" not in shown and "categorical(" not in shown
 
     scored = tmp_path / "scored.parquet"
     run("score", str(model_path), str(folder / "*.parquet"), "-o", str(scored),
@@ -199,7 +200,10 @@ def test_model_file_error_exit_5(tmp_path):
 
 @pytest.mark.slow
 def test_demo_small(tmp_path):
-    proc = run("demo", "--rows", "30000", "--dir", str(tmp_path / "demo"), "--quiet")
-    assert "claim-frequency" in proc.stdout and "qualified actuary" in proc.stdout
-    for name in ("frequency.json", "severity.json", "scored_frequency.parquet"):
+    proc = run("demo", "--rows", "30000", "--dir", str(tmp_path / "demo"))
+    assert "claim frequency" in proc.stdout and "qualified actuary" in proc.stdout
+    for name in ("frequency.json", "severity.json", "scored_frequency.parquet",
+                 "frequency.toml", "severity.toml", "tables/frequency/notes.txt"):
         assert os.path.exists(tmp_path / "demo" / name)
+    quiet = run("demo", "--rows", "30000", "--dir", str(tmp_path / "again"), "--quiet")
+    assert quiet.stdout == ""

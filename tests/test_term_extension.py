@@ -134,4 +134,5 @@ def test_model_file_round_trip_and_report(fit, book, tmp_path):
 
     out = write_report(again, tmp_path / "step.html")
     html = open(out, encoding="utf-8").read()
-    assert "step_for_test(power)" in html and html.count("<img ") >= 2
+    # the term appears under its title (its column) and its kind's name
+    assert ">power <span" in html and "step_for_test" in html and html.count("<img ") >= 2

@@ -8,8 +8,11 @@ values of rows that break a stated rule (e.g. negative claim counts). The second
 value of every numeric model column and per level of every level column: numeric values
 are placed on a grid of ``HIST_BUCKETS`` steps from the column's minimum to its maximum,
 which is exact for whole-number columns spanning at most that many values (ages, years,
-bonus levels). One grouped query serves all columns; memory is bounded by the grid, never
-by the rows.
+bonus levels). A positive column whose values bunch at the low end of a range of several
+orders of magnitude (a population density, a sum insured: :func:`geometric_grid`) gets
+steps of equal ratio instead, so the bulk of its data is not crushed into the first steps.
+Grid values are rounded to 12 significant digits (:func:`tidy`). One grouped query serves
+all columns; memory is bounded by the grid, never by the rows.
 
 The result is a :class:`DataProfile`: the model's columns (:meth:`DataProfile.numeric`,
 :meth:`DataProfile.levels`) and its roles (response, weights, exposure, offset:
@@ -28,6 +31,7 @@ from tallgam.data.sources import Source
 from tallgam.errors import DataError, ModelFileError
 
 HIST_BUCKETS = 10_000  # grid steps from minimum to maximum in the value histograms
+TIDY_DIGITS = 12       # significant digits kept of grid values (no float noise)
 SAVED_VALUES = 2_000   # histogram values kept per column in the model file
 EXAMPLES = 5
 ROLES = ("response", "weights", "exposure", "offset")
@@ -270,6 +274,29 @@ class DataProfile:
         return out
 
 
+def tidy(values, digits: int = TIDY_DIGITS) -> np.ndarray:
+    """Values rounded to ``digits`` significant digits: removes the float noise of sums and
+    grid arithmetic (0.1 + 0.2) and leaves any value written with fewer digits unchanged."""
+    x = np.asarray(values, dtype=np.float64)
+    out = x.copy()
+    ok = np.isfinite(x) & (x != 0)
+    scale = 10.0 ** (digits - 1 - np.floor(np.log10(np.abs(x[ok]))))
+    out[ok] = np.round(x[ok] * scale) / scale
+    return out
+
+
+def geometric_grid(fp: NumericProfile) -> bool:
+    """Whether a numeric column's histogram uses steps of equal ratio: a positive column,
+    not whole numbers on a short range, spanning at least two orders of magnitude with its
+    mean in the lowest 5% of the range (the skew of a lognormal-like column)."""
+    lo, hi, mean = fp.min, fp.max, fp.mean
+    if lo is None or hi is None or mean is None or not lo > 0:
+        return False
+    if fp.integer and hi - lo <= HIST_BUCKETS:
+        return False
+    return hi / lo >= 100 and (mean - lo) < 0.05 * (hi - lo)
+
+
 def _opt_float(v) -> float | None:
     return None if v is None else float(v)
 
@@ -411,10 +438,16 @@ def add_value_histograms(source: Source, prof: DataProfile, fields: list[Field],
     for f, k in zip(numeric, keys):
         fp = prof.columns[f.name]
         lo, hi = float(fp.min), float(fp.max)
+        x = f"CAST({f.expr} AS DOUBLE)"
+        if geometric_grid(fp):  # steps of equal ratio: k = round(ln(x / lo) / ln-step)
+            step = float(np.log(hi / lo)) / HIST_BUCKETS
+            grids.append((lo, step, True))
+            inner.append(f"CASE WHEN isfinite({x}) THEN CAST(round(ln({x} / {lo!r}) / "
+                         f"{step!r}) AS BIGINT) END AS {k}")
+            continue
         step = 1.0 if fp.integer and hi - lo <= HIST_BUCKETS else (hi - lo) / HIST_BUCKETS
         step = step or 1.0
-        grids.append((lo, step))
-        x = f"CAST({f.expr} AS DOUBLE)"
+        grids.append((lo, step, False))
         inner.append(f"CASE WHEN isfinite({x}) THEN CAST(round(({x} - {lo!r}) / {step!r}) "
                      f"AS BIGINT) END AS {k}")
     for f, k in zip(levels, keys[len(numeric):]):
@@ -438,9 +471,10 @@ def add_value_histograms(source: Source, prof: DataProfile, fields: list[Field],
                 break
     for i, f in enumerate(numeric):
         fp = prof.columns[f.name]
-        lo, step = grids[i]
+        lo, step, ratio = grids[i]
         ks = np.array(sorted(per[i]), dtype=np.int64)
-        fp.values = np.minimum(lo + ks * step, fp.max) if len(ks) else np.zeros(0)
+        grid = lo * np.exp(ks * step) if ratio else lo + ks * step
+        fp.values = np.minimum(tidy(grid), fp.max) if len(ks) else np.zeros(0)
         fp.rows = np.array([per[i][k][0] for k in ks], dtype=np.float64)
         if weight_expr:
             fp.weight = np.array([per[i][k][1] for k in ks], dtype=np.float64)

@@ -94,15 +94,6 @@ def _relativity_limits(values: np.ndarray, ref: float, log: bool) -> tuple[float
     return lo - pad, hi + pad
 
 
-def _dense_rows(weight: np.ndarray | None, n: int, tail: float = 0.005) -> np.ndarray:
-    """Rows inside the central 1 − 2·tail of the weight (all rows without weights)."""
-    if weight is None or not np.sum(weight) > 0:
-        return np.ones(n, bool)
-    cum = np.cumsum(weight) / np.sum(weight)
-    before = cum - weight / np.sum(weight)
-    return (cum >= tail) & (before <= 1 - tail)
-
-
 def effect_figure(table, title: str, *, log_link: bool, weight_label: str = "training weight",
                   reference=None, histogram=None):
     """A term's relativity (log link) or effect (link scale) with its band, over the
@@ -113,8 +104,10 @@ def effect_figure(table, title: str, *, log_link: bool, weight_label: str = "tra
     ``weight_label`` says what ``training_weight`` sums; ``reference`` is the input value
     where the relativity is 1 (marked); ``histogram`` (values, weights), e.g. the training
     profile's, draws the weight panel in more detail than the table's rows. The y-axis
-    spans the estimate everywhere and the band where the central 99% of the training
-    weight lies; band parts beyond are cut."""
+    spans the estimate and its band where the central 99% of the training weight lies;
+    what a few extreme policies at the ends do runs off the axis."""
+    from tallgam.outputs.tables import central_rows
+
     plt = _plt()
     key = _value_key(table)
     per = [c for c in table.column_names if c not in STAT_COLUMNS and c != key]
@@ -143,8 +136,9 @@ def effect_figure(table, title: str, *, log_link: bool, weight_label: str = "tra
         ax.fill_between(x, lower, upper, color=BAND, alpha=0.45 if per else 0.85, linewidth=0)
         ax.plot(x, est, color=INK, linewidth=2.0, linestyle=dashes[i % 4],
                 label=str(name) if name is not None else None)
-        dense = _dense_rows(weight if weight is not None and not per else None, len(x))
-        shown += [est, lower[dense], upper[dense]]
+        dense = (central_rows(weight) if weight is not None and not per
+                 else np.ones(len(x), bool))
+        shown += [est[dense], lower[dense], upper[dense]]
     base = 1.0 if log_link else 0.0
     ax.axhline(base, color=MUTED, linewidth=0.9)
     if reference is not None and np.isfinite(reference):

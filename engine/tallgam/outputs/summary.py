@@ -173,13 +173,19 @@ def _tests(fit) -> dict:
 
 def _ranges(fit, rel) -> dict[str, tuple[float, float]]:
     """Smallest and largest relativity (log link) or effect of every term over the rows of
-    its table that carry training weight (all rows when the table has no weights)."""
+    its table holding the central 99% of the training weight (numeric inputs: a handful of
+    extreme policies at the ends do not set it), every level with training weight, or all
+    rows of a table without weights."""
+    from tallgam.outputs.tables import central_rows
+
     key = "relativity" if rel.base_rate is not None else "difference"
     out = {}
     for label, table in rel.tables.items():
         values = table.column(key).to_numpy()
         if "training_weight" in table.column_names:
-            keep = table.column("training_weight").to_numpy() > 0
+            weight = table.column("training_weight").to_numpy()
+            keep = weight > 0 if fit.term(label)[0].drawn_as == "levels" else \
+                central_rows(weight)
             if keep.any():
                 values = values[keep]
         if len(values):
@@ -212,9 +218,10 @@ def _terms(fit, rel) -> list[str]:
                                 for i, (c, w) in enumerate(zip(cells, widths))).rstrip()
 
     out = ["Terms", line(head)] + [line(r) for r in rows]
-    what = ("relativity range: smallest and largest relativity over the training data"
+    what = ("relativity range: smallest and largest relativity over the training data "
+            "(numeric factors: the central 99% of the training weight; every level)"
             if log else "effect range: smallest and largest effect (link scale) over the "
-            "training data")
+            "training data (numeric factors: the central 99% of the training weight)")
     out += textwrap.wrap(what, WIDTH, initial_indent="  ", subsequent_indent="  ")
     if tests:
         used = ", ".join(sorted(n for n in names if n))

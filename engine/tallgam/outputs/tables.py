@@ -29,25 +29,13 @@ import numpy as np
 import pyarrow as pa
 from scipy import stats
 
+from tallgam.data.profile import tidy
 from tallgam.errors import SpecError
 from tallgam.terms.base import GRID_POINTS, Basis, term_matrix
 
-TIDY_DIGITS = 12
 #: the file columns in the order a pricing reader wants them (link-scale columns last)
 COLUMN_ORDER = ("training_weight", "data_weight", "relativity", "relativity_lower",
                 "relativity_upper", "difference", "lower", "upper", "std_error", "estimate")
-LINK_SCALE = ("estimate", "difference", "std_error", "lower", "upper")
-
-
-def tidy(values, digits: int = TIDY_DIGITS) -> np.ndarray:
-    """Values rounded to ``digits`` significant digits: removes the float noise of sums and
-    grid arithmetic (0.1 + 0.2) and leaves any value written with fewer digits unchanged."""
-    x = np.asarray(values, dtype=np.float64)
-    out = x.copy()
-    ok = np.isfinite(x) & (x != 0)
-    scale = 10.0 ** (digits - 1 - np.floor(np.log10(np.abs(x[ok]))))
-    out[ok] = np.round(x[ok] * scale) / scale
-    return out
 
 
 @dataclass
@@ -152,7 +140,7 @@ class RelativityTables:
         names = {lab: f"{stem}.{formats[0]}" for lab, stem in stems.items()}
         width = max([len(n) for n in names.values()] + [len("base.csv")])
         for label, name in names.items():
-            out.append(f"  {name:<{width}}  {self.titles.get(label, label)}  (term {label})")
+            out.append(f"  {name:<{width}}  {self.titles.get(label, label)}")
         out += [f"  {'base.csv':<{width}}  the base rate and the reference values, every digit",
                 ""]
         rows = [("(input columns)", "the rating factor's value: every value seen in training "
@@ -258,8 +246,9 @@ def relativity_rows(fit, label: str, grid: dict, refs: dict[str, dict] | None = 
     out = {"estimate": est, "difference": diff, "std_error": se, "lower": diff - z * se,
            "upper": diff + z * se}
     if fit.model.link.multiplicative:
-        out.update(relativity=np.exp(diff), relativity_lower=np.exp(diff - z * se),
-                   relativity_upper=np.exp(diff + z * se))
+        with np.errstate(over="ignore"):  # a band beyond 1e308 is reported as inf
+            out.update(relativity=np.exp(diff), relativity_lower=np.exp(diff - z * se),
+                       relativity_upper=np.exp(diff + z * se))
     return out
 
 
@@ -302,6 +291,23 @@ def relativity_tables(fit, *, reference: dict | None = None, level: float = 0.95
             other.weight_name, weight_unit(fit.model, other.weight_name)).replace(
             "training ", "")),
         about=describe(fit), level=level)
+
+
+CENTRAL = 0.99  # the share of the training weight whose rows set ranges and chart axes
+
+
+def central_rows(weight, share: float = CENTRAL) -> np.ndarray:
+    """Which rows of a table (in its order) hold the central ``share`` of its weight: a
+    row counts when any of its weight lies between the (1 − share)/2 and (1 + share)/2
+    points of the cumulated weight. All rows when there is no weight."""
+    w = np.asarray(weight, dtype=np.float64)
+    total = np.sum(w)
+    if not total > 0:
+        return np.ones(len(w), bool)
+    tail = (1.0 - share) / 2.0
+    after = np.cumsum(w) / total
+    before = after - w / total
+    return (after > tail) & (before < 1.0 - tail) & (w > 0)
 
 
 def weight_unit(model, weight_name: str | None) -> str | None:
