@@ -45,7 +45,7 @@ scikit-learn route exhausts this machine's memory is extrapolated by a straight 
 (least squares) through its peak RSS at the measured sizes: an estimate, said as such.
 
     python bench/alternatives_bench.py --rows 1000000 5000000
-    python bench/alternatives_bench.py --rows 1000000 --engine-option discretize=true
+    python bench/alternatives_bench.py --rows 1000000 --engine-option binned=true
 """
 
 from __future__ import annotations

@@ -190,8 +190,8 @@ def warm_up() -> float:
 
 
 def fit_options() -> dict:
-    """Extra fit() arguments: ``--discretize`` reaches the workers through the environment."""
-    return {"discretize": True} if os.environ.get("TALLGAM_BENCH_DISCRETIZE") == "1" else {}
+    """Extra fit() arguments: ``--binned`` reaches the workers through the environment."""
+    return {"binned": True} if os.environ.get("TALLGAM_BENCH_BINNED") == "1" else {}
 
 
 def sources_hash(pkg: str) -> str:
@@ -633,16 +633,16 @@ def main(argv=None) -> int:
     ap.add_argument("--delete-data", action="store_true",
                     help="remove each generated book after its size is done")
     ap.add_argument("--tasks", nargs="+", choices=TASKS, default=list(TASKS))
-    ap.add_argument("--discretize", action="store_true",
-                    help="fit with discretize=True (covariates coded into tables)")
+    ap.add_argument("--binned", action="store_true",
+                    help="fit with binned=True (covariates coded into tables)")
     ap.add_argument("--live-engine", action="store_true",
                     help="import the engine from its checkout in every task instead of a copy "
                          "taken when the run starts")
     ap.add_argument("--worker", choices=TASKS, help=argparse.SUPPRESS)
     ap.add_argument("--book", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
-    if args.discretize:
-        os.environ["TALLGAM_BENCH_DISCRETIZE"] = "1"
+    if args.binned:
+        os.environ["TALLGAM_BENCH_BINNED"] = "1"
 
     if args.worker:
         print(json.dumps(worker(args.worker, args.book, args.batch_rows, args.scan_repeats)))

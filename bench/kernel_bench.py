@@ -15,8 +15,8 @@ intercept-only start, constraint weights = exposure):
   the same encoded idx/val, the level terms as one-hot columns) and add
   ``X.T @ (w[:, None] * X)`` (numpy → BLAS dgemm), ``X.T @ (w r)`` and ``X.T @ w_c``;
   the time is building X + the products.
-* ``discrete``: the engine's discretized layout (``tallgam.passes.binned.DiscreteDesign``,
-  the ``discretize=`` option of fit), through the same pass interface
+* ``discrete``: the engine's binned layout (``tallgam.passes.binned.BinnedDesign``,
+  the ``binned=`` option of fit), through the same pass interface
   (``read`` / ``accumulator`` / ``add`` / ``finish``); the time is add + finish, its
   set-up and the coding of the rows are reported apart. Binned continuous columns make it
   approximate, so its difference from the exact XᵀWX is reported, not checked.

@@ -6,9 +6,9 @@ process so that its peak resident memory (VmHWM) is its own:
 
 * ``scan``: read the model's select list in ``--batch-rows`` batches exactly as a data pass
   reads it (DuckDB → Arrow → numpy), and nothing else: the cost of reading the data once.
-* ``discrete``: ``reference_model().fit(files, discretize=True)`` (scratch copy of the coded
+* ``discrete``: ``reference_model().fit(files, binned=True)`` (scratch copy of the coded
   rows in the system's temporary folder, the default).
-* ``plain``: the same fit without discretization (only up to ``--plain-max`` rows: at 100M
+* ``plain``: the same fit without binning (only up to ``--plain-max`` rows: at 100M
   rows it would take over an hour here).
 
 Before a timed fit the process fits a 20,000-row in-memory book once, so numba's compiled
@@ -66,7 +66,7 @@ def warm_up() -> None:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         for d in (False, True):
-            reference_model().fit(table, discretize=d, scratch=False)
+            reference_model().fit(table, binned=d, scratch=False)
 
 
 def task(name: str, files: list[str], batch_rows: int) -> dict:
@@ -91,7 +91,7 @@ def task(name: str, files: list[str], batch_rows: int) -> dict:
         elif event.kind == "end" and event.task in starts:
             times[event.task] = time.perf_counter() - starts.pop(event.task)
     t0 = time.perf_counter()
-    fit = reference_model().fit(files, batch_rows=batch_rows, discretize=(name == "discrete"),
+    fit = reference_model().fit(files, batch_rows=batch_rows, binned=(name == "discrete"),
                                 progress=on_event)
     seconds = time.perf_counter() - t0
     passes = [v for k, v in times.items() if k.startswith("pass")]
@@ -104,7 +104,7 @@ def task(name: str, files: list[str], batch_rows: int) -> dict:
         "edf": float(sum(v for k, v in fit.edf.items() if k != "total")),
         "peak_rss_mb": proc_status().get("VmHWM"), "base_rss_mb": base,
         "rows": int(fit.statistics.get("rows", 0)) if hasattr(fit, "statistics") else None,
-        "notes": [n for n in fit.notes if n.startswith("discretized")],
+        "notes": [n for n in fit.notes if n.startswith("binned")],
     }
 
 
@@ -118,7 +118,7 @@ def run_task(name: str, rows: int, files_dir: str, args) -> dict:
 
 
 def markdown(results: list[dict]) -> str:
-    head = ("| rows | scan s | discretized fit s | passes | profile s | first pass s | "
+    head = ("| rows | scan s | binned fit s | passes | profile s | first pass s | "
             "later pass s (median) | later pass / scan | peak RSS MB | plain fit s | "
             "plain pass s (median) | plain peak RSS MB |")
     lines = [head, "|" + "---:|" * 12]
@@ -147,7 +147,7 @@ def plot(results: list[dict], path: str) -> None:
 
     rows = [r["rows"] for r in results]
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4))
-    for key, label, style in (("discrete", "fit, discretized", "o-"),
+    for key, label, style in (("discrete", "fit, binned", "o-"),
                               ("plain", "fit, plain", "s--"), ("scan", "one scan", "^:")):
         pts = [(r["rows"], r[key]["seconds"]) for r in results
                if key in r and "seconds" in r[key]]

@@ -229,6 +229,8 @@ def cmd_tables(args) -> int:
 
 
 def cmd_validate(args) -> int:
+    import textwrap
+
     from tallgam.model import load
     from tallgam.outputs.formatting import CAUTION
 
@@ -238,7 +240,7 @@ def cmd_validate(args) -> int:
         make_folder(args.output)  # a bad output folder fails now, not after the pass
     val = fit.validate(_source(args), against=against, where=args.where,
                        batch_rows=args.batch_rows, progress=_progress(args))
-    _print(args, val.summary() + f"\n\nCaution: {CAUTION}")
+    _print(args, val.summary() + "\n\n" + "\n".join(textwrap.wrap(f"Caution: {CAUTION}", 92)))
     if args.output:
         paths = val.write(args.output)
         _say(args, f"{len(paths)} files written to {args.output} (notes.txt explains them)")

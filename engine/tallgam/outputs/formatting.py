@@ -75,16 +75,16 @@ def p_value(p) -> str:
 
 
 def smoothing(lam) -> str:
-    """A smoothing parameter (or several) for people: two significant digits, exponent
-    allowed (λ spans many orders of magnitude)."""
+    """A smoothing parameter (or several) for people: two significant digits in exponent
+    form (λ spans many orders of magnitude: 6.5e+04, 4.0e+08)."""
     if lam is None:
         return "–"
     if isinstance(lam, (list, tuple)):
         values = [v for v in lam if _finite(v)]
         if len(values) > 2:
-            return f"{len(values)} values {min(values):.2g} to {max(values):.2g}"
-        return " / ".join(f"{v:.2g}" for v in values) or "–"
-    return f"{float(lam):.2g}" if _finite(lam) else "–"
+            return f"{len(values)} values {min(values):.1e} to {max(values):.1e}"
+        return " / ".join(f"{v:.1e}" for v in values) or "–"
+    return f"{float(lam):.1e}" if _finite(lam) else "–"
 
 
 def weight_label(weight_name: str | None, unit: str | None) -> str:

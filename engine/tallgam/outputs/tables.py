@@ -262,7 +262,7 @@ def relativity_tables(fit, *, reference: dict | None = None, level: float = 0.95
 
     refs = references(fit, reference)
     base_link = float(fit.coefficients_raw[fit.design.slices[0]][0])
-    other = data_profile(fit, data, where) if data is not None else None
+    other, source = data_profile(fit, data, where) if data is not None else (None, None)
     tables: dict[str, pa.Table] = {}
     for b, sl in zip(fit.bases[1:], fit.design.slices[1:]):
         ref = refs[b.label]
@@ -289,7 +289,7 @@ def relativity_tables(fit, *, reference: dict | None = None, level: float = 0.95
         weight_label=training_label(fit),
         data_label=(None if other is None else weight_label(
             other.weight_name, weight_unit(fit.model, other.weight_name)).replace(
-            "training ", "")),
+            "training ", "") + f" of {source}"),
         about=describe(fit), level=level)
 
 
@@ -339,7 +339,8 @@ def describe(fit) -> str:
 
 def data_profile(fit, data, where: str | None = None):
     """The value histograms of the model's input columns over ``data`` (rows meeting
-    ``where``), weighted by the model's exposure (or weights) when the data hold it."""
+    ``where``), weighted by the model's exposure (or weights) when the data hold it, and
+    the data's description: (DataProfile, str)."""
     from tallgam.data.inputs import column_or_expression, model_inputs
     from tallgam.data.profile import run_profile
     from tallgam.data.sources import open_source
@@ -358,7 +359,7 @@ def data_profile(fit, data, where: str | None = None):
             except DataError:  # data to be priced may lack the weights: count rows
                 weight = None
         return run_profile(source, fields, [], None, histograms=True, weight_expr=weight,
-                           weight_name=name if weight else None)
+                           weight_name=name if weight else None), source.label
     finally:
         if owned:
             source.close()
