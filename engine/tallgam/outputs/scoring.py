@@ -216,10 +216,10 @@ def score_to_file(fit, data, output_path, *, keep: tuple[str, ...] | list[str] =
     from tallgam.data.sources import open_source
     from tallgam.progress import Event, make_callback
 
+    check_target(output_path)   # a bad output path fails before any row is read
     fmt = file_format(output_path)
     batch_rows = RunOptions(batch_rows=batch_rows).batch_rows
     callback = make_callback(progress)
-    check_target(output_path)   # a bad output path fails before any row is read
     source = open_source(data, where=where)
     owned = source is not data
     try:
