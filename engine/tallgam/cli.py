@@ -322,10 +322,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="print the Python traceback of a failure (for reporting a bug)")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
-    def quiet(sp, progress=True):
-        sp.add_argument("-q", "--quiet", action="store_true",
-                        help="print nothing but errors and warnings (no progress, summary or "
-                             "messages)")
+    def quiet(sp, progress=True, help="print nothing but errors and warnings (no progress, "
+                                      "summary or messages)"):
+        sp.add_argument("-q", "--quiet", action="store_true", help=help)
         if progress:
             sp.add_argument("--log-json", action="store_true",
                             help="progress as JSON lines on stderr (for batch logs)")
@@ -427,7 +426,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="leave out the exposure (or offset)")
     q.add_argument("-o", "--output", metavar="FILE", default=None,
                    help="write the expression to this file instead of printing it")
-    quiet(q, progress=False)
+    quiet(q, progress=False, help="with -o: no message (without -o the expression itself is "
+                                  "the output, and is printed)")
     q.set_defaults(func=cmd_sql)
 
     t = sub.add_parser("tables", help="write every rating factor's relativity table (CSV, "

@@ -84,9 +84,13 @@ def _value_key(table) -> str:
 
 
 def _relativity_limits(values: np.ndarray, ref: float, log: bool) -> tuple[float, float]:
-    lo, hi = float(np.nanmin(values)), float(np.nanmax(values))
+    """The y-range of an effect chart: the values and the reference, padded; relativities
+    span at least 1 ± ``MIN_SPAN``, so a term with next to no effect looks flat."""
+    values = np.asarray(values, dtype=np.float64)
+    values = values[np.isfinite(values) & ((values > 0) if log else True)]
+    lo, hi = (float(values.min()), float(values.max())) if len(values) else (ref, ref)
     if log:
-        lo, hi = min(lo, ref), max(hi, ref)
+        lo, hi = min(lo, ref - MIN_SPAN), max(hi, ref + MIN_SPAN)
         pad = (np.log(hi) - np.log(lo)) * 0.06 or 0.05
         return float(np.exp(np.log(lo) - pad)), float(np.exp(np.log(hi) + pad))
     lo, hi = min(lo, ref), max(hi, ref)
@@ -157,7 +161,7 @@ def effect_figure(table, title: str, *, log_link: bool, weight_label: str = "tra
     if log_x:
         bar.set_xscale("log")
         _plain_ticks(bar.xaxis, float(x_all.min()), float(x_all.max()))
-    if histogram is not None and not per:
+    if histogram is not None:  # all levels of a per-level curve together
         _weight_histogram(bar, *histogram, log_x)
     elif weight is not None and not per:
         _weight_histogram(bar, x_all, weight, log_x)

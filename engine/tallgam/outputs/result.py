@@ -277,6 +277,9 @@ class FitResult:
                 raise SpecError("scoring on a cluster reads whole files, so it takes no row "
                                 "filter (where); write the filtered rows to files first, or "
                                 "score without the cluster")
+            if str(output_path).lower().endswith(".csv"):
+                raise SpecError("scoring on a cluster writes a folder of Parquet part files; "
+                                f"give a folder name, not {str(output_path)!r}")
 
             return score_to_directory(self, data, output_path, cluster=cluster, **kwargs)
         from tallgam.outputs.scoring import score_to_file

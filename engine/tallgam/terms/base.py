@@ -28,7 +28,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from tallgam.data.profile import DataProfile
+from tallgam.data.profile import DataProfile, tidy
 from tallgam.errors import DataError, ModelFileError, SpecError, nearest
 from tallgam.terms import sqltext
 
@@ -457,8 +457,11 @@ def data_points(profile: DataProfile | None, column: str, points: int,
         x = np.asarray(p.values, dtype=np.float64)
     else:
         x = p.weighted_quantiles(np.linspace(0.0, 1.0, points))
-    x = np.unique(np.concatenate([[lo, hi], x[(x >= lo) & (x <= hi)]]))
-    return x
+    # the exact ends, and the values between them that stay distinct at 12 significant
+    # digits (what tables write), so a table never holds two rows that print the same
+    inner = np.unique(tidy(x[(x > lo) & (x < hi)]))
+    inner = inner[(inner > tidy([lo])[0]) & (inner < tidy([hi])[0])]
+    return np.unique(np.concatenate([[lo], inner, [hi]]))
 
 
 def term_matrix(b: Basis, grid: dict) -> np.ndarray:
