@@ -28,7 +28,7 @@ from tallgam.cli import build_parser, main
 
 pytestmark = [pytest.mark.filterwarnings("ignore::tallgam.TallgamWarning"), pytest.mark.slow]
 
-ROWS = 60_000
+ROWS = 40_000
 HOLDOUT = "policy_year = 2024"
 # lines of another program's printed summary that ours must not carry (issue 15)
 FORBIDDEN = ("deviance explained", "adjusted R²", "adjusted r-sq", "parametric coefficient",
@@ -44,10 +44,21 @@ def cli(capsys, *args) -> tuple[int, str, str]:
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory):
+    """The demo on a small book, run once; what it printed is checked here."""
+    import contextlib
+    import io
+
     folder = tmp_path_factory.mktemp("demo")
-    with warnings.catch_warnings():
+    out = io.StringIO()
+    with warnings.catch_warnings(), contextlib.redirect_stdout(out):
         warnings.simplefilter("ignore")
-        assert main(["demo", "--rows", str(ROWS), "--dir", str(folder), "-q"]) == 0
+        assert main(["demo", "--rows", str(ROWS), "--dir", str(folder)]) == 0
+    printed = out.getvalue()
+    assert "claim frequency" in printed and "qualified actuary" in printed
+    assert "spec files to copy from" in printed
+    for name in ("frequency.toml", "severity.toml", "frequency_banded.toml",
+                 "tables/frequency/notes.txt", "report_frequency.html"):
+        assert (folder / name).exists(), name
     return folder
 
 

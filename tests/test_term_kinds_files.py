@@ -168,6 +168,6 @@ def test_spec_neighbour_path_is_relative_to_the_spec(frame, tmp_path, monkeypatc
 
 
 def test_removable_with_fixed_criterion_is_refused():
-    # the selection penalty's smoothing is chosen by the criterion, so "fixed" cannot work
-    with pytest.raises(tg.SpecError, match="removable=True"):
+    # the removal penalty's smoothing is chosen by the criterion, so "fixed" cannot work
+    with pytest.raises(tg.SpecError, match="removable adds a penalty"):
         tg.Model("y", criterion="fixed", terms=[tg.spline("x", smoothing=1.0, removable=True)])

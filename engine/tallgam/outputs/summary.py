@@ -142,8 +142,9 @@ def _fit_rows(fit, rel) -> list[tuple[str, str]]:
         rows.append(("dispersion", "1 (fixed by the family)"))
     else:
         rows.append(("dispersion", f"{number(s['scale'], 5)} (estimated)"))
-    rows.append(("EDF", f"{number(fit.edf['total'], 4)} for {count(fit.design.p)} "
-                        "coefficients"))
+    p = fit.design.p
+    rows.append(("EDF", f"{number(fit.edf['total'], 4)} for {count(p)} "
+                        f"coefficient{'s' if p != 1 else ''}"))
     passes = s["passes"]
     status = "converged" if s["converged"] else "NOT CONVERGED (the estimates are those of " \
         "the last pass)"
@@ -210,6 +211,8 @@ def _terms(fit, rel) -> list[str]:
         rows.append([b.title, b.kind.replace("_", " "), fixed(fit.edf.get(b.label), 2),
                      smoothing(fit.smoothing.get(b.label)), spread,
                      p_value(test.get("p_value")) if test is not None else "–"])
+    if not rows:
+        return ["Terms", "  none: the model is the base rate alone", ""]
     widths = [max(len(r[i]) for r in [head, *rows]) for i in range(len(head))]
     right = {2, 3}
 
