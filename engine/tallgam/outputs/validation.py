@@ -151,7 +151,8 @@ class Validation:
                      ("challenger Gini, normalised", fixed(self.challenger_gini, 4))]
         width = max(len(k) for k, _ in rows) + 2
         lines = ["Hold-out"] + [f"  {k:<{width}}{v}" for k, v in rows]
-        lines += ["", f"Lift: ten bands of equal {exposure_name} by predicted rate",
+        equal = "numbers of rows" if exposure_name == "rows" else exposure_name
+        lines += ["", f"Lift: ten bands of equal {equal} by predicted rate",
                   f"  {'band':>4}{exposure_name:>14}{'actual rate':>14}{'predicted rate':>16}"
                   f"{'actual / expected':>19}"]
         for r in self.lift.to_pylist():
