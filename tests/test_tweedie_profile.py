@@ -6,7 +6,6 @@ women in 1975, 43% zero: a point mass at zero and positive amounts)."""
 
 from __future__ import annotations
 
-import numpy as np
 import pytest
 
 import tallgam as tg
