@@ -19,6 +19,9 @@ Example::
     kind = "categorical"
     column = "fuel"
 
+A ``[bands]`` and a ``[tariff]`` table may follow, for ``tallgam tariff --bands SPEC``
+(:mod:`tallgam.outputs.bands`); fitting ignores them.
+
 Unknown keys and wrong types raise :class:`~tallgam.errors.SpecError` naming the key and
 suggesting the nearest valid one.
 """

@@ -293,6 +293,57 @@ def fewest_bands(weight: np.ndarray, relativity: np.ndarray, tolerance: float,
     return np.array(starts[::-1], dtype=np.int64)
 
 
+def within_tolerance(weight: np.ndarray, relativity: np.ndarray, cell: np.ndarray,
+                     n_cells: int, tolerance: float) -> bool:
+    """Whether every cell keeps its points' relativity within ``tolerance`` of the cell's
+    weighted mean (``cell``: the cell of every point, all arrays flat)."""
+    held = np.bincount(cell, weights=weight, minlength=n_cells)
+    count = np.bincount(cell, minlength=n_cells)
+    total = np.bincount(cell, weights=weight * relativity, minlength=n_cells)
+    plain = np.bincount(cell, weights=relativity, minlength=n_cells)
+    mean = np.where(held > 0, total / np.where(held > 0, held, 1.0),
+                    plain / np.maximum(count, 1))
+    top = np.full(n_cells, -np.inf)
+    low = np.full(n_cells, np.inf)
+    np.maximum.at(top, cell, relativity)
+    np.minimum.at(low, cell, relativity)
+    used = count > 0
+    return bool(np.all(top[used] <= (1.0 + tolerance + SLACK) * mean[used])
+                and np.all(low[used] >= (1.0 - tolerance - SLACK) * mean[used]))
+
+
+def coarsened(values: list[np.ndarray], cuts: list[np.ndarray], weight: np.ndarray,
+              relativity: np.ndarray, tolerance: float) -> list[np.ndarray]:
+    """Cut points of several margins with cuts removed, one at a time, as long as every
+    cell of the product still keeps the relativity within ``tolerance`` of its value.
+
+    ``values`` per margin the grid's values; ``weight`` and ``relativity`` have the grid's
+    shape. Per-margin bands from :func:`fewest_bands` bound the spread of each margin
+    separately, which is safe but fine-grained; the cells' own rule is what matters."""
+    cuts = [np.asarray(c, dtype=np.float64) for c in cuts]
+    w, r = weight.ravel(), relativity.ravel()
+
+    def ok(trial: list[np.ndarray]) -> bool:
+        idx = [np.searchsorted(c, v, side="right") for c, v in zip(trial, values)]
+        shape = tuple(len(c) + 1 for c in trial)
+        cell = np.ravel_multi_index(np.meshgrid(*idx, indexing="ij"), shape).ravel()
+        return within_tolerance(w, r, cell, int(np.prod(shape)), tolerance)
+
+    changed = True
+    while changed:
+        changed = False
+        for d in range(len(cuts)):
+            i = 0
+            while i < len(cuts[d]):
+                trial = list(cuts)
+                trial[d] = np.delete(cuts[d], i)
+                if ok(trial):
+                    cuts, changed = trial, True
+                else:
+                    i += 1
+    return cuts
+
+
 def cuts_from_starts(values: np.ndarray, starts: np.ndarray) -> np.ndarray:
     """Cut points of bands starting at the given histogram points. Any cut in
     (previous value, first value of the band] splits the training values alike; the one

@@ -168,18 +168,15 @@ class Factor:
         """Strata from the level inputs and their groups (one per group or lone level)."""
         for col in self.level_inputs:
             self.groups[col] = spec.group_of(col)
-            groups = set(self.groups[col].values())
             known = set(self.levels[col])
             unknown = sorted(set(self.groups[col]) - known)
             if unknown:
                 raise SpecError(f"bands: {col!r} has no level(s) {unknown[:5]} (levels are "
                                 f"{', '.join(self.levels[col][:8])}...)")
-            clash = sorted((groups & known) - {g for lv, g in self.groups[col].items()
-                                               if lv == g})
-            lone = [g for g in clash if g not in self.groups[col]]
-            if lone:
-                raise SpecError(f"bands: the group name {lone[0]!r} of {col!r} is also a "
-                                "level outside that group; rename the group")
+            for name, members in spec.groups.get(col, {}).items():
+                if name in known and name not in members:
+                    raise SpecError(f"bands: the group name {name!r} of {col!r} is also a "
+                                    "level outside that group; rename the group")
         keyed: dict[tuple, list[tuple]] = {}
         for t in product(*(self.levels[c] for c in self.level_inputs)):
             key = tuple(self.groups[c].get(lv, lv) for c, lv in zip(self.level_inputs, t))
@@ -227,6 +224,12 @@ class Factor:
                         starts = fewest_bands(margin_w, curves, (1.0 + tol) ** (1.0 / k) - 1.0,
                                               low)
                     st.cuts.append(bandlib.cuts_from_starts(values, starts))
+            auto = [self.rules[c].method == "auto" for c in self.numeric_inputs]
+            if k > 1 and all(auto):
+                tol = min(self.rules[c].tolerance if self.rules[c].tolerance is not None
+                          else spec.tolerance for c in self.numeric_inputs)
+                st.cuts = bandlib.coarsened([grid[c] for c in self.numeric_inputs], st.cuts,
+                                            wsum, rs, tol)
         offset = 0
         for st in self.strata:
             st.offset = offset
@@ -620,6 +623,7 @@ class Tariff:
 
         folder = os.fspath(folder)
         os.makedirs(folder, exist_ok=True)
+        earlier = written_before(folder)
         paths = []
 
         def put(name: str, payload) -> None:
@@ -647,9 +651,25 @@ class Tariff:
             page = cost_page(cost)
             if page is not None:
                 put("cost.html", page)
-        put("manifest.json", json.dumps(clean_json(manifest), indent=1, allow_nan=False) + "\n")
         put("README.txt", readme_text(self))
+        manifest["written"] = sorted(os.path.basename(p) for p in paths)
+        put("manifest.json", json.dumps(clean_json(manifest), indent=1, allow_nan=False) + "\n")
+        for name in earlier - set(manifest["written"]):  # an earlier tariff's, not rewritten
+            if os.path.isfile(os.path.join(folder, name)):
+                os.remove(os.path.join(folder, name))
         return paths
+
+
+def written_before(folder: str) -> set[str]:
+    """The files an earlier tariff wrote into ``folder`` (from its manifest), if any."""
+    try:
+        with open(os.path.join(folder, "manifest.json"), encoding="utf-8") as fh:
+            old = json.load(fh)
+    except (OSError, ValueError):
+        return set()
+    if not isinstance(old, dict) or old.get("format") != FORMAT:
+        return set()
+    return {os.path.basename(str(n)) for n in old.get("written", [])}
 
 
 def cost_page(cost) -> str | None:
@@ -699,21 +719,24 @@ def table_bytes(table: pa.Table, writer) -> bytes:
 def write_output(path: str, payload: str | bytes) -> None:
     """The one place tariff files are written: atomically, through a temporary file in the
     same folder renamed over ``path`` (text through the model file's writer)."""
+    import tempfile
+
     from tallgam.outputs.modelfile import atomic_write_text
 
-    if isinstance(payload, bytes):
-        payload_path = path + ".tmp"
-        try:
-            with open(payload_path, "wb") as fh:
-                fh.write(payload)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(payload_path, path)
-        finally:
-            if os.path.exists(payload_path):
-                os.remove(payload_path)
+    if not isinstance(payload, bytes):
+        atomic_write_text(path, payload)
         return
-    atomic_write_text(path, payload)
+    fd, tmp = tempfile.mkstemp(prefix=".tallgam-", suffix=".tmp",
+                               dir=os.path.dirname(os.path.abspath(path)))
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(payload)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.remove(tmp)
 
 
 def clean_json(obj):
