@@ -197,6 +197,10 @@ def test_pure_premium_unbanded_equals_frequency_times_severity(book):
     glob, freq, sev, frame = book
     from tallgam.outputs.tables import references
 
+    # one model, nothing banded: the tariff's base rate is the relativity tables' own
+    assert tg.tariff(freq, bands="none").base_rate == pytest.approx(
+        freq.relativities().base_rate, rel=1e-12)
+
     # each model measures driver_age from its own exposure- or claim-weighted median
     assert references(freq)["spline(driver_age)"] != references(sev)["spline(driver_age)"]
     sample = frame.sample(2000, random_state=4)
@@ -310,10 +314,15 @@ def test_band_specifications_and_their_errors(book, tmp_path):
     assert tariff.spec.tolerance == 0.05 and tariff.reference["driver_age"] == 40.0
     assert tariff.factors["driver_age"].n_cells == 9
     assert tariff.factors["density"].largest_deviation() <= 0.01 + 1e-12
-    # a model spec file may hold the [bands] table beside its terms
-    from tallgam.spec import parse_spec
+    # a model spec file may hold the [bands] table beside its terms: fit and tariff read it
+    from tallgam.spec import load_spec
 
-    parse_spec('response = "claim_count"\nfamily = "poisson"\n[bands]\ndriver_age = [30]\n')
+    model_spec = tmp_path / "frequency.toml"
+    model_spec.write_text('response = "claim_count"\nfamily = "poisson"\n[[term]]\n'
+                          'kind = "linear"\ncolumn = "bonus_level"\n\n[bands]\n'
+                          'driver_age = [30, 60]\n')
+    assert load_spec(model_spec).model.response == "claim_count"
+    assert tg.tariff(freq, bands=model_spec).factors["driver_age"].n_cells == 3
     bad = [({"driver_ag": [30]}, "driver_age"), ({"driver_age": [40, 30]}, "increase"),
            ({"driver_age": {"north": ["R01"]}}, "numeric"), ({"region": [1, 2]}, "level"),
            ({"density": "some"}, "unknown rule"), ({"driver_age": {"cut": [1]}}, "cuts")]

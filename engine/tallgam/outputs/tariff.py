@@ -109,6 +109,7 @@ class Factor:
         self.kinds = kinds
         self.components = components
         self.levels = levels                   # level input → its levels
+        self.level_index = {c: {lv: i for i, lv in enumerate(v)} for c, v in levels.items()}
         self.level_inputs = [c for c, k in kinds.items() if k == "levels"]
         self.numeric_inputs = [c for c, k in kinds.items() if k == "numeric"]
         self.rules: dict[str, BandRule] = {}
@@ -186,7 +187,7 @@ class Factor:
         self.stratum_map = np.full(int(np.prod(sizes)) if sizes else 1, -1, dtype=np.int64)
         for s, st in enumerate(self.strata):
             for t in st.members:
-                idx = [self.levels[c].index(lv) for c, lv in zip(self.level_inputs, t)]
+                idx = [self.level_index[c][lv] for c, lv in zip(self.level_inputs, t)]
                 self.stratum_map[np.ravel_multi_index(idx, sizes) if sizes else 0] = s
 
     def choose_bands(self, spec: BandSpec, grid: dict, weight: np.ndarray, rel: np.ndarray,
@@ -273,10 +274,9 @@ class Factor:
         """Inputs at the lower corner of each cell (level inputs: its first member level),
         numeric values held inside the training range."""
         grid: dict = {c: [] for c in self.kinds}
+        offsets = np.array([st.offset for st in self.strata])
         for cell in cells:
-            s = next(i for i, st in enumerate(self.strata)
-                     if st.offset <= cell < st.offset + st.size)
-            st = self.strata[s]
+            st = self.strata[int(np.searchsorted(offsets, cell, side="right")) - 1]
             for c, lv in zip(self.level_inputs, st.members[0]):
                 grid[c].append(lv)
             idx = np.unravel_index(cell - st.offset, st.shape) if st.cuts else ()
@@ -395,22 +395,25 @@ class Factor:
                 parts.append(b.sql(c.fit.coefficients_raw[sl]))
             ref = sum(c.ref for c in self.components)
             return f"exp(({' + '.join(parts)}) - {sqltext.num(ref)})"
-        return self._level_sql(0, list(range(len(self.strata))), [])
+        stratum_of = {t: s for s, st in enumerate(self.strata) for t in st.members}
+        leaves: dict[int, str] = {}     # a group's members share one expression
 
-    def _level_sql(self, depth: int, strata: list[int], chosen: list[str]) -> str:
-        if depth == len(self.level_inputs):
-            (s,) = {s for s in strata if any(tuple(chosen) == t for t in
-                                             self.strata[s].members)}
-            return self._numeric_sql(self.strata[s], 0, ())
-        col = self.level_inputs[depth]
-        labels, values = [], []
-        for lv in self.levels[col]:
-            keep = [s for s in strata if any(t[:depth + 1] == (*chosen, lv)
-                                             for t in self.strata[s].members)]
-            if keep:
-                labels.append(lv)
-                values.append(self._level_sql(depth + 1, keep, [*chosen, lv]))
-        return sqltext.levels_case(col, labels, values, "NULL")
+        def over_levels(depth: int, prefix: tuple, tuples: list[tuple]) -> str:
+            if depth == len(self.level_inputs):
+                s = stratum_of[prefix]
+                if s not in leaves:
+                    leaves[s] = self._numeric_sql(self.strata[s], 0, ())
+                return leaves[s]
+            col = self.level_inputs[depth]
+            by_level: dict[str, list[tuple]] = {}
+            for t in tuples:
+                by_level.setdefault(t[depth], []).append(t)
+            labels = [lv for lv in self.levels[col] if lv in by_level]
+            return sqltext.levels_case(col, labels, [over_levels(depth + 1, (*prefix, lv),
+                                                                 by_level[lv])
+                                                    for lv in labels], "NULL")
+
+        return over_levels(0, (), list(stratum_of))
 
     def _numeric_sql(self, st: Stratum, d: int, idx: tuple) -> str:
         if d == len(self.numeric_inputs):
@@ -900,7 +903,8 @@ def check_levels(f: Factor) -> None:
     for c in f.level_inputs:
         for comp in f.components[1:]:
             b, _ = comp.fit.term(comp.label)
-            missing = [lv for lv in f.levels[c] if lv not in set(b.level_sets().get(c, []))]
+            known = set(b.level_sets().get(c, []))
+            missing = [lv for lv in f.levels[c] if lv not in known]
             if missing:
                 raise SpecError(
                     f"{f.name}: the {comp.role} model has no value for {len(missing)} level(s) "
@@ -922,7 +926,7 @@ def factor_points(f: Factor) -> tuple[dict, np.ndarray, tuple[int, ...]]:
     for i, c in enumerate(f.level_inputs):
         mass = prof.levels(c).mass_of(f.levels[c])
         total = float(np.sum(mass)) if total is None else total
-        lw = lw * np.array([mass[f.levels[c].index(t[i])] for t in tuples])
+        lw = lw * mass[[f.level_index[c][t[i]] for t in tuples]]
     weights.append(lw)
     for c in f.numeric_inputs:
         p = prof.numeric(c)
