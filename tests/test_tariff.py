@@ -207,7 +207,7 @@ def test_pure_premium_unbanded_equals_frequency_times_severity(book):
     want = freq.predict(sample) / sample["exposure"].to_numpy() * sev.predict(sample)
     for reference in ({}, {"region": "R07", "driver_age": 35}):
         tariff = tg.tariff(freq, sev, bands="none", reference=reference)
-        rels = tariff.relativities(sample)
+        rels = tariff.factor_relativities(sample)
         product = tariff.base_rate * np.prod(list(rels.values()), axis=0)
         np.testing.assert_allclose(product, want, rtol=1e-9, atol=0)
         # both models measured from one point: by default the frequency model's

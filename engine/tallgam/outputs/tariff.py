@@ -253,14 +253,15 @@ class Factor:
             offsets = np.array([st.offset for st in self.strata], dtype=np.int64)
             return np.where(stratum >= 0, offsets[np.maximum(stratum, 0)], -1)
         xs = [np.asarray(cols[c], dtype=np.float64) for c in self.numeric_inputs]
-        bad = np.any([~np.isfinite(x) for x in xs], axis=0)
+        stratum = np.where(np.all([np.isfinite(x) for x in xs], axis=0), stratum, -1)
         out = np.full(n, -1, dtype=np.int64)
+        order = np.argsort(stratum, kind="stable")      # rows grouped by stratum
+        bounds = np.searchsorted(stratum[order], np.arange(len(self.strata) + 1))
         for s, st in enumerate(self.strata):
-            rows = np.flatnonzero((stratum == s) & ~bad)
-            if not len(rows):
-                continue
-            idx = [np.searchsorted(c, x[rows], side="right") for c, x in zip(st.cuts, xs)]
-            out[rows] = st.offset + np.ravel_multi_index(idx, st.shape)
+            rows = order[bounds[s]:bounds[s + 1]]
+            if len(rows):
+                idx = [np.searchsorted(c, x[rows], side="right") for c, x in zip(st.cuts, xs)]
+                out[rows] = st.offset + np.ravel_multi_index(idx, st.shape)
         return out
 
     def relativity_of(self, cells: np.ndarray) -> np.ndarray:
@@ -290,6 +291,7 @@ class Factor:
     def finish(self, sums: CellSums, low_limit: float) -> None:
         """Band values from the summed training data: exposure-weighted means, the fitted
         relativity at the lower edge of empty cells, then divided by the reference cell."""
+        self.scale, self.scale_per_model = 1.0, {}
         self.exposure = sums.weight.copy()
         mean, held = sums.means()
         self.fitted_min, self.fitted_max = sums.low.copy(), sums.high.copy()
@@ -545,8 +547,8 @@ class Tariff:
 
         return tariff_rates(self, data, where=where, batch_rows=batch_rows)[0]
 
-    def relativities(self, data, *, where: str | None = None,
-                     batch_rows: int = 1_000_000) -> dict[str, np.ndarray]:
+    def factor_relativities(self, data, *, where: str | None = None,
+                            batch_rows: int = 1_000_000) -> dict[str, np.ndarray]:
         """Every factor's tariff relativity for every row of ``data`` (row order)."""
         from tallgam.outputs.banding_cost import tariff_rates
 
