@@ -22,8 +22,8 @@ def book(n: int = 20_000, seed: int = 4) -> pd.DataFrame:
     return df
 
 
-@pytest.mark.parametrize("discretize", [False, True])
-def test_fused_poisson_pass_equals_the_generic_path(monkeypatch, discretize):
+@pytest.mark.parametrize("binned", [False, True])
+def test_fused_poisson_pass_equals_the_generic_path(monkeypatch, binned):
     df = book()
     model = tg.Model(response="claims", family="poisson", exposure="exposure", weights="w",
                      terms=[tg.spline("x"), tg.spline("age")])
@@ -37,7 +37,7 @@ def test_fused_poisson_pass_equals_the_generic_path(monkeypatch, discretize):
             states["fused"] = state
         return state
     monkeypatch.setattr(passes, "working_pass", spy)
-    fit = model.fit(df, batch_rows=6_000, binned=discretize, scratch=False)
+    fit = model.fit(df, batch_rows=6_000, binned=binned, scratch=False)
     assert fit.converged
     a, b = states["generic"], states["fused"]
     for name in ("dense", "cross", "diag", "rhs", "colsum"):

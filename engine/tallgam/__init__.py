@@ -36,6 +36,8 @@ _PUBLIC = {
     "DataError": "tallgam.errors",
     "FitError": "tallgam.errors",
     "ModelFileError": "tallgam.errors",
+    "OutOfMemoryError": "tallgam.errors",
+    "OutputError": "tallgam.errors",
     "SpecError": "tallgam.errors",
     "TallgamError": "tallgam.errors",
     "TallgamWarning": "tallgam.errors",

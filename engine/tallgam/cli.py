@@ -3,7 +3,11 @@
 Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
 column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
 file); 4 the fit did not converge (the model file is still written, marked so);
-5 model-file error. Messages go to stderr and say what to do.
+5 model-file error; 6 an output or the file system failed (folder missing or not writable,
+output path is a folder, disk full); 7 out of memory; 8 ``check --alert``: a stability index
+reached the alert level; 130 interrupted. Every exception goes through one funnel
+(:func:`failure`) to a message on stderr, capped in length, that says what to do; a Python
+traceback only with ``--debug``.
 """
 
 from __future__ import annotations
@@ -13,21 +17,70 @@ import os
 import sys
 import warnings
 
+from tallgam.atomic import check_target, make_folder, replacing
 from tallgam.errors import (
     ConvergenceWarning,
     DataError,
     FitError,
     ModelFileError,
+    OutputError,
     SpecError,
     TallgamError,
+    clip,
 )
 from tallgam.version import __version__
 
 EXIT_OK, EXIT_FAIL, EXIT_USAGE, EXIT_DATA, EXIT_NOT_CONVERGED, EXIT_MODEL_FILE = 0, 1, 2, 3, 4, 5
+EXIT_OUTPUT, EXIT_MEMORY, EXIT_DRIFT, EXIT_INTERRUPTED = 6, 7, 8, 130
+#: longest message printed for one error or warning
+MESSAGE_LIMIT = 2000
+MEMORY_ADVICE = ("lower --batch-rows, use fewer --threads, make large terms smaller (spline "
+                 "sizes, categoricals with many levels: a random effect instead), or run on a "
+                 "machine with more memory")
 
 
 def _err(msg: str) -> None:
-    print(f"tallgam: {msg}", file=sys.stderr)
+    print(f"tallgam: {clip(msg, MESSAGE_LIMIT)}", file=sys.stderr)
+
+
+def _out_of_memory(exc: BaseException) -> bool:
+    """Whether ``exc``, or an exception it was raised from, is running out of memory."""
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        seen.add(id(exc))
+        if isinstance(exc, MemoryError) or type(exc).__name__ == "OutOfMemoryException":
+            return True
+        exc = exc.__cause__ or exc.__context__
+    return False
+
+
+def failure(exc: BaseException) -> tuple[int, str]:
+    """The exit code and the message for an exception that ended a command."""
+    if isinstance(exc, KeyboardInterrupt):
+        return EXIT_INTERRUPTED, "interrupted; no partial output was left behind"
+    if isinstance(exc, SpecError):
+        return EXIT_USAGE, str(exc)
+    if isinstance(exc, ModelFileError):
+        return EXIT_MODEL_FILE, str(exc)
+    if isinstance(exc, OutputError):
+        return EXIT_OUTPUT, str(exc)
+    if _out_of_memory(exc):
+        detail = str(exc) if isinstance(exc, TallgamError) else \
+            f"out of memory ({type(exc).__name__}: {clip(exc, 300) or 'no details'})"
+        return EXIT_MEMORY, f"{detail}; {MEMORY_ADVICE}"
+    if isinstance(exc, (DataError, FitError)):
+        return EXIT_DATA, str(exc)
+    if isinstance(exc, TallgamError):
+        return EXIT_FAIL, str(exc)
+    if isinstance(exc, OSError):
+        from tallgam.atomic import describe_os_error
+
+        where = "" if exc.filename is None else f" {clip(repr(exc.filename), 300)}"
+        if exc.filename2 is not None:
+            where += f" -> {clip(repr(exc.filename2), 300)}"
+        return EXIT_OUTPUT, f"file-system error on{where or ' a file'}: {describe_os_error(exc)}"
+    return EXIT_FAIL, (f"unexpected failure ({type(exc).__name__}: {clip(exc, 500)}); run "
+                       "again with --debug for the traceback and report it")
 
 
 def _progress(args):
@@ -54,6 +107,7 @@ def cmd_fit(args) -> int:
         raise SpecError(f"{args.spec} names no data; add data = \"...\" or pass --data")
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
     binned = spec.binned if args.binned is None else args.binned
+    check_target(out)  # a bad output path fails now, not after the fit
     fit = spec.model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
                          threads=args.threads or spec.threads, progress=_progress(args),
                          cluster=args.cluster, binned=binned,
@@ -130,21 +184,41 @@ def cmd_validate(args) -> int:
 
     fit = load(args.model)
     against = load(args.against) if args.against else None
+    if args.output:
+        make_folder(args.output)  # a bad output folder fails now, not after the pass
     val = fit.validate(args.data, against=against, batch_rows=args.batch_rows,
                        progress=_progress(args))
     print(val.summary())
     if args.output:
         import pyarrow.csv as pacsv
 
-        os.makedirs(args.output, exist_ok=True)
         named = {"lift": val.lift, "lorenz": val.lorenz}
         if val.double_lift is not None:
             named["double_lift"] = val.double_lift
         for col, table in val.actual_vs_expected.items():
             named[f"actual_vs_expected_{col}"] = table
         for name, table in named.items():
-            pacsv.write_csv(table, os.path.join(args.output, f"{name}.csv"))
+            with replacing(os.path.join(args.output, f"{name}.csv")) as tmp:
+                pacsv.write_csv(table, tmp)
         print(f"{len(named)} tables written to {args.output}", file=sys.stderr)
+    return EXIT_OK
+
+
+def cmd_check(args) -> int:
+    from tallgam.model import load
+
+    fit = load(args.model)
+    check = fit.check(args.data, where=args.where)
+    print(check.summary())
+    if args.output:
+        from tallgam.atomic import write_text
+
+        write_text(args.output, check.to_json() + "\n")
+        print(f"check written to {args.output}", file=sys.stderr)
+    if args.alert is not None and check.worst_psi >= args.alert:
+        _err(f"a stability index reached {check.worst_psi:.3f} (alert level {args.alert:g}): "
+             f"{', '.join(check.flagged(args.alert))}")
+        return EXIT_DRIFT
     return EXIT_OK
 
 
@@ -216,8 +290,12 @@ def build_parser() -> argparse.ArgumentParser:
         prog="tallgam",
         description="Generalized additive models fitted to data larger than memory.",
         epilog="Exit codes: 0 ok, 1 unexpected failure, 2 usage/spec error, 3 data error, "
-               "4 fit did not converge, 5 model-file error.")
+               "4 fit did not converge, 5 model-file error, 6 output/file-system error (folder "
+               "missing or not writable, disk full), 7 out of memory, 8 check found a stability "
+               "index at the alert level, 130 interrupted.")
     p.add_argument("--version", action="version", version=f"tallgam {__version__}")
+    p.add_argument("--debug", action="store_true",
+                   help="print the Python traceback of a failure (for reporting a bug)")
     sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     def common(sp, progress=True):
@@ -295,6 +373,17 @@ def build_parser() -> argparse.ArgumentParser:
     common(v)
     v.set_defaults(func=cmd_validate)
 
+    k = sub.add_parser("check", help="new data against a model's training profile: range, "
+                       "unseen levels, population stability index")
+    k.add_argument("model", help="the model file (JSON)")
+    k.add_argument("data", help="data to check: file, glob or directory")
+    k.add_argument("--where", help="SQL filter on the data (e.g. \"policy_year = 2025\")")
+    k.add_argument("--alert", type=float, default=None, metavar="PSI",
+                   help=f"exit with code {EXIT_DRIFT} when a stability index reaches PSI "
+                        "(0.25 is the usual alert level, 0.1 the watch level)")
+    k.add_argument("-o", "--output", help="write the check as JSON to this file")
+    k.set_defaults(func=cmd_check)
+
     r = sub.add_parser("report", help="a self-contained HTML report of a model")
     r.add_argument("model")
     r.add_argument("--data", help="hold-out data for the validation section")
@@ -341,6 +430,9 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--seed", type=int, default=7)
     common(d)
     d.set_defaults(func=cmd_demo)
+    for command in sub.choices.values():  # --debug after the command works too
+        command.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                             help="print the Python traceback of a failure")
     return p
 
 
@@ -359,25 +451,17 @@ def main(argv: list[str] | None = None) -> int:
         warnings.simplefilter("always")
         try:
             code = args.func(args)
-        except SpecError as exc:
-            code = EXIT_USAGE
-            _err(str(exc))
-        except ModelFileError as exc:
-            code = EXIT_MODEL_FILE
-            _err(str(exc))
-        except (DataError, FitError) as exc:
-            code = EXIT_DATA
-            _err(str(exc))
-        except TallgamError as exc:
-            code = EXIT_FAIL
-            _err(str(exc))
-        except KeyboardInterrupt:
-            code = 130
-            _err("interrupted; no partial output was left behind")
         except BrokenPipeError:  # e.g. `tallgam sql m.json | head`: the reader left early
             devnull = os.open(os.devnull, os.O_WRONLY)
             os.dup2(devnull, sys.stdout.fileno())
             code = EXIT_OK
+        except (Exception, KeyboardInterrupt) as exc:
+            code, message = failure(exc)
+            if args.debug:
+                import traceback
+
+                traceback.print_exception(exc, file=sys.stderr)
+            _err(message)
     _show_warnings(w for w in caught if not issubclass(w.category, DeprecationWarning))
     if any(issubclass(w.category, ConvergenceWarning) for w in caught) and code == EXIT_OK:
         code = EXIT_NOT_CONVERGED

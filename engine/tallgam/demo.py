@@ -169,7 +169,7 @@ def severity_model(where: str | None = TRAIN):
                tg.categorical("region")])
 
 
-DISCRETIZE_ROWS = 5_000_000  # books of this size and over are fitted with discretize=True
+BINNED_ROWS = 5_000_000  # books of this size and over are fitted with binned=True
 
 
 def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
@@ -178,9 +178,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     save the models; write relativity tables; build the pure-premium tariff and measure
     its cost of banding on 2024; validate on 2024 into HTML reports; score the whole
     book."""
-    import duckdb
-
     import tallgam as tg
+    from tallgam.data.sources import connect
 
     folder = os.fspath(folder)
     book_dir = os.path.join(folder, "book")
@@ -190,9 +189,9 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     quoted = "'" + glob.replace("'", "''") + "'"
     holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) WHERE {HOLDOUT}")
     options = {"progress": progress}
-    if rows >= DISCRETIZE_ROWS:  # large books: passes on coded rows (docs/performance.md)
-        options["discretize"] = True
-        echo("large book: covariates coded into tables of distinct values (discretize=True)")
+    if rows >= BINNED_ROWS:  # large books: passes on coded rows (docs/performance.md)
+        options["binned"] = True
+        echo("large book: binned passes, covariates coded into tables of distinct values")
     echo(f"fitting the claim-frequency model on {TRAIN} (poisson, log link, exposure offset)")
     freq = frequency_model().fit(glob, **options)
     freq.save(os.path.join(folder, "frequency.json"))
@@ -213,7 +212,7 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     scored = os.path.join(folder, "scored_frequency.parquet")
     echo(f"scoring the whole book with the frequency model into {scored}")
     freq.score(glob, scored, keep=["policy_id", "claim_count"], progress=progress)
-    con = duckdb.connect()  # one aggregate over the scored file: no join, bounded memory
+    con = connect()  # one aggregate over the scored file: no join, bounded memory
     actual, expected = con.execute(
         "SELECT sum(claim_count), sum(prediction) FROM read_parquet(?)", [scored]).fetchall()[0]
     con.close()

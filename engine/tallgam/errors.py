@@ -31,6 +31,19 @@ class FitError(TallgamError, RuntimeError):
     """The fit could not be carried out (for example a rank-deficient design)."""
 
 
+class OutputError(TallgamError, OSError):
+    """An output cannot be written where it was asked: the folder is missing, is a file or is
+    not writable, the path is a folder, the disk is full. The message names the path;
+    ``errno`` and ``filename`` are set when a file-system call failed."""
+
+    def __str__(self) -> str:  # the message, not OSError's "[Errno n] ..." layout
+        return str(self.args[0]) if self.args else ""
+
+
+class OutOfMemoryError(TallgamError, MemoryError):
+    """The work needs more memory than this machine grants (the message says what to lower)."""
+
+
 class TallgamWarning(UserWarning):
     """Something was changed or may be wrong, but the work went on (always with counts)."""
 
@@ -43,5 +56,34 @@ def nearest(name: str, candidates) -> str:
     """A ' (did you mean ...?)' hint for a misspelt name, or an empty string."""
     import difflib
 
-    close = difflib.get_close_matches(str(name), [str(c) for c in candidates], n=1, cutoff=0.6)
-    return f" (did you mean {close[0]!r}?)" if close else ""
+    name = str(name)
+    if len(name) > VALUE_CHARS:  # no name that long is a typo of a short one (and difflib is slow)
+        return ""
+    close = difflib.get_close_matches(name, [str(c) for c in candidates if len(str(c)) <= 4 *
+                                             VALUE_CHARS], n=1, cutoff=0.6)
+    return f" (did you mean {shorten(close[0])}?)" if close else ""
+
+
+#: longest user value echoed in a message (characters of its repr)
+VALUE_CHARS = 80
+#: longest message text taken over from a library (DuckDB, pyarrow) into one of ours
+MESSAGE_CHARS = 1000
+
+
+def shorten(value, limit: int = VALUE_CHARS) -> str:
+    """``repr(value)``, cut to about ``limit`` characters with the length said, so a message
+    never echoes a huge user value (a 30 MB string, a long list)."""
+    text = repr(value)
+    if len(text) <= limit:
+        return text
+    return f"{text[:limit]}... ({len(text):,} characters)"
+
+
+def clip(text, limit: int = MESSAGE_CHARS) -> str:
+    """Message text (e.g. a library's error) cut in the middle to about ``limit`` characters;
+    its start and end, where libraries put the what and the where, are kept."""
+    text = str(text)
+    if len(text) <= limit:
+        return text
+    head, tail = text[: limit * 2 // 3], text[-(limit // 3):]
+    return f"{head} [... {len(text) - len(head) - len(tail):,} characters cut ...] {tail}"

@@ -32,7 +32,7 @@ import os
 import sys
 from dataclasses import dataclass, field
 
-from tallgam.errors import SpecError, nearest
+from tallgam.errors import SpecError, nearest, shorten
 from tallgam.model import Model
 from tallgam.terms.base import kinds, spec_class
 
@@ -76,7 +76,7 @@ def _check_type(where: str, key: str, value, types: tuple) -> None:
                                                           list: "list", dict: "table",
                                                           bool: "true/false"}[t]
                             for t in types if t is not int or float not in types)
-        raise SpecError(f"{where}: key {key!r} must be a {names}, got {value!r}")
+        raise SpecError(f"{where}: key {key!r} must be a {names}, got {shorten(value)}")
 
 
 def parse_term(table: dict, index: int, folder: str | None = None) -> object:

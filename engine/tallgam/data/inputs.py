@@ -7,13 +7,46 @@ list made here, so a column is cast and quoted the same way everywhere.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 
 from tallgam.data.profile import DataProfile, Field, Rule
 from tallgam.data.sources import Source, quote
-from tallgam.errors import ColumnNotFound, DataError
+from tallgam.errors import ColumnNotFound, DataError, shorten
 
 Y, W, O, WC = "__y", "__w", "__o", "__wc"  # reserved batch aliases
+
+#: whole numbers below this (2**53) are exact in a DOUBLE, so their key is the integer's text
+_EXACT_WHOLE = 9007199254740992
+_LEGACY_WHOLE = re.compile(r"-?\d+\.0")
+
+
+def level_key(expr: str) -> str:
+    """SQL for the key (text) of a level value of ``expr``, whatever the type it is stored in.
+
+    Numbers stored as floating point or decimals get the key an integer column gives: 3.0
+    (DOUBLE), 3 (INTEGER) and 3.00 (DECIMAL) are all ``'3'``; other numbers their shortest
+    text (``'2.5'``); NaN and ±inf are missing (NULL), so the NULL policy applies to them
+    rather than a level called 'nan'. Text, integers, booleans and dates keep their own text
+    (codes such as '007' stay apart from '7'). The same expression serves fitting, scoring,
+    validation and the SQL export, so a model fitted from one storage scores another."""
+    text = f"CAST({expr} AS VARCHAR)"
+    d = f"TRY_CAST({text} AS DOUBLE)"
+    number = (f"CASE WHEN NOT isfinite({d}) THEN NULL WHEN {d} = trunc({d}) AND abs({d}) < "
+              f"{_EXACT_WHOLE} THEN CAST(CAST({d} AS BIGINT) AS VARCHAR) "
+              f"ELSE CAST({d} AS VARCHAR) END")
+    return (f"(CASE WHEN typeof({expr}) IN ('FLOAT', 'DOUBLE') OR typeof({expr}) LIKE "
+            f"'DECIMAL%' THEN {number} ELSE {text} END)")
+
+
+def legacy_level_key(label: str) -> str:
+    """The key :func:`level_key` gives today for a level label of an older model file, in
+    which a whole number read from a floating-point column was written '3.0'."""
+    if _LEGACY_WHOLE.fullmatch(label):
+        whole = label[:-2]
+        return "0" if whole == "-0" else whole
+    return label
+
 
 _NUMERIC_TYPES = ("TINYINT", "SMALLINT", "INTEGER", "BIGINT", "HUGEINT", "UTINYINT",
                   "USMALLINT", "UINTEGER", "UBIGINT", "UHUGEINT", "FLOAT", "DOUBLE", "DECIMAL",
@@ -52,8 +85,9 @@ def column_or_expression(source: Source, text: str, role: str) -> str:
         from tallgam.errors import nearest
 
         raise ColumnNotFound(
-            f"{role} {text!r} is neither a column of {source.label}{nearest(text, source.schema)}"
-            f" nor a SQL expression DuckDB accepts ({exc})") from None
+            f"{role} {shorten(text)} is neither a column of {source.label}"
+            f"{nearest(text, source.schema)} nor a SQL expression DuckDB accepts ({exc})"
+        ) from None
     return f"({text})"
 
 
@@ -87,18 +121,18 @@ def model_inputs(model, source: Source, design_specs, for_prediction: bool = Fal
         fields_.append(Field(model.response, exprs[Y], role="response"))
         for cond, msg in model.family.rules(model.weights is not None):
             rules.append(Rule(f"response: {msg}", "response", cond.format(y="{response}"),
-                              f"response {model.response!r} has {msg}"))
+                              f"response {shorten(model.response)} has {msg}"))
     if W in exprs:
         select.append(f"CAST({exprs[W]} AS DOUBLE) AS {W}")
         fields_.append(Field(model.weights, exprs[W], role="weights"))
         rules.append(Rule("weights: not positive", "weights", "{weights} <= 0",
-                          f"weights {model.weights!r} has values ≤ 0"))
+                          f"weights {shorten(model.weights)} has values ≤ 0"))
     parts = []
     if "__exposure" in exprs:
         parts.append(f"ln(CAST({exprs['__exposure']} AS DOUBLE))")
         fields_.append(Field(model.exposure, exprs["__exposure"], role="exposure"))
         rules.append(Rule("exposure: not positive", "exposure", "{exposure} <= 0",
-                          f"exposure {model.exposure!r} has values ≤ 0"))
+                          f"exposure {shorten(model.exposure)} has values ≤ 0"))
     if "__offset" in exprs:
         parts.append(f"CAST({exprs['__offset']} AS DOUBLE)")
         fields_.append(Field(model.offset, exprs["__offset"], role="offset"))
@@ -112,10 +146,10 @@ def model_inputs(model, source: Source, design_specs, for_prediction: bool = Fal
     if cw is not None and not for_prediction:
         select.append(f"{cw} AS {WC}")
     for c, kind in columns.items():  # every model column once, whichever terms use it
-        fields_.append(Field(c, quote(c), kind))
+        fields_.append(Field(c, level_key(quote(c)) if kind == "levels" else quote(c), kind))
     for c, kind in columns.items():
-        cast = "VARCHAR" if kind == "levels" else "DOUBLE"
-        select.append(f"CAST({quote(c)} AS {cast}) AS {quote(c)}")
+        value = level_key(quote(c)) if kind == "levels" else f"CAST({quote(c)} AS DOUBLE)"
+        select.append(f"{value} AS {quote(c)}")
     return Inputs(select=select, where=model.where, level_names={
         c for c, k in columns.items() if k == "levels"}, has_weights=W in exprs,
         has_offset=bool(parts), has_cweights=cw is not None and not for_prediction,
@@ -140,18 +174,47 @@ def complete_rows_condition(fields_: list[Field]) -> str:
 
 def check_profile(profile: DataProfile, source: Source, model) -> None:
     """DataError for empty data, NULL/NaN/inf values and rule violations (with counts)."""
-    where = f" after the filter {model.where!r}" if model.where else ""
+    where = f" after the filter {shorten(model.where)}" if model.where else ""
     if profile.rows == 0:
         raise DataError(f"{source.label} has no rows{where}")
     bad = []
     for name, (nulls, nonfinite) in profile.missing().items():
-        what = f"{nulls} NULL" + (f", {nonfinite} NaN/inf" if nonfinite else "")
+        prof = profile.columns.get(name)
+        if prof is not None and prof.kind == "levels":
+            what = f"{nulls} NULL/NaN"
+        else:
+            what = f"{nulls} NULL" + (f", {nonfinite} NaN/inf" if nonfinite else "")
         bad.append(f"{name!r}: {what}")
     if bad:
         raise DataError(
             f"missing or non-finite values in {len(bad)} column(s) of {profile.rows} rows — "
             + "; ".join(bad) + ". Clean them, filter them with where=, or pass missing='drop'.")
+    _check_magnitudes(profile, model)
     if profile.violations:
         lines = [f"{msg}: {n} row(s), e.g. {', '.join(f'{v:g}' for v in ex)}"
                  for n, ex, msg in profile.violations.values()]
         raise DataError("values outside what the model allows — " + "; ".join(lines))
+
+
+#: responses and multipliers beyond this magnitude would overflow sums of squares
+LARGEST_VALUE = 1e100
+
+
+def _check_magnitudes(profile: DataProfile, model) -> None:
+    """DataError when the response is so large (or so small, all non-zero) that sums of its
+    squares leave double precision; the model's columns are measured in internal units, so
+    their own scale does not matter."""
+    y = profile.role("response")
+    if y is None or y.min is None:
+        return
+    big = max(abs(y.min), abs(y.max))
+    if big > LARGEST_VALUE:
+        raise DataError(
+            f"the response {shorten(model.response)} reaches {big:.3g}: sums of squares of "
+            "such values overflow double precision. Rescale it in SQL (e.g. response = "
+            "\"amount / 1e6\") and scale predictions back")
+    if 0 < big < 1.0 / LARGEST_VALUE:
+        raise DataError(
+            f"the response {shorten(model.response)} is at most {big:.3g} in magnitude: "
+            "squares of such values underflow double precision. Rescale it in SQL (e.g. "
+            "response = \"rate * 1e6\")")

@@ -1,11 +1,13 @@
-"""A scratch copy of a discretized fit's rows, so later passes do not read the source again.
+"""A scratch copy of a binned fit's rows, so later passes do not read the source again.
 
-The first data pass of a discretized fit writes what every pass needs from a row (the
+The first data pass of a binned fit writes what every pass needs from a row (the
 codes of its terms, the response, the weights and the offset: a few dozen bytes) to flat
 binary files in a private scratch folder; the later passes read them back in batches
 instead of reading and decoding the source and coding its columns again. The copy is made
 only when its size fits the policy's limit, is used only when complete and for the same
-coding, and is removed when the fit ends, whatever way it ends.
+coding, and is removed when the fit ends, whatever way it ends; a copy left by a fit killed
+with SIGKILL is removed by the next fit that makes one in the same folder
+(:func:`tallgam.atomic.remove_stale`).
 """
 
 from __future__ import annotations
@@ -16,6 +18,8 @@ import tempfile
 from dataclasses import dataclass
 
 import numpy as np
+
+from tallgam.atomic import new_folder
 
 #: share of the free disk space a scratch copy may take when no limit is given
 FREE_SHARE = 0.5
@@ -67,7 +71,9 @@ class Scratch:
         self.names = names
         self.code_dtype = np.dtype(code_dtype)
         self.n_codes = n_codes
-        self.path = tempfile.mkdtemp(prefix="tallgam-scratch-", dir=folder)
+        # named with this process's id: a later run removes it if this one is killed
+        self.path = new_folder(folder or tempfile.gettempdir(), "scratch", private=True,
+                               hidden=False)
         self.rows = 0
         self.complete = False
         self._files = {name: open(os.path.join(self.path, name), "wb")

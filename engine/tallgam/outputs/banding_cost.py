@@ -24,7 +24,6 @@ Measures of the cost of banding, each for the smooth model(s) and for the tariff
 from __future__ import annotations
 
 import os
-import tempfile
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 
@@ -33,6 +32,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from tallgam.atomic import new_scratch_file
 from tallgam.data.sources import Source, open_source, quote
 from tallgam.errors import DataError
 from tallgam.options import RunOptions
@@ -319,8 +319,7 @@ def banding_cost(tariff, data, *, where: str | None = None, actual: str | None =
         measure = f"{family.name} deviance"
         note = f"the {family.name} deviance of the model's response, as in validation"
     extra["__e"] = weight_sql(first)
-    fd, path = tempfile.mkstemp(prefix="tallgam-tariff-", suffix=".parquet", dir=scratch_dir)
-    os.close(fd)
+    path = new_scratch_file("tariff", ".parquet", scratch_dir)
     names = [name for name, f in tariff.factors.items() if f.banded]
     dev = {"model": 0.0, "tariff": 0.0}
     writer = None

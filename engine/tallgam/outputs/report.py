@@ -168,7 +168,8 @@ def _profile_table(fit) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def html_report(fit, validation=None, *, title: str | None = None, banding=None) -> str:
+def html_report(fit, validation=None, *, title: str | None = None, check=None,
+                banding=None) -> str:
     """One self-contained HTML page: summary, every term's figure and table, the data
     profile, hold-out validation (if given), the cost of banding of a tariff built from
     the model (``banding``, from ``Tariff.cost``) and the cautions. Images are embedded."""
@@ -228,6 +229,9 @@ def html_report(fit, validation=None, *, title: str | None = None, banding=None)
             parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, column)),
                               f"actual versus expected by {column}"))
             parts.append(_html_table(table))
+    if check is not None:
+        parts.append('<h3 id="check">The hold-out against the training data</h3>')
+        parts.append(f"<pre>{_esc(check.summary())}</pre>")
     if banding is not None:
         parts.append(banding_section(banding))
     parts.append('<h2 id="data">Training data</h2>')
@@ -250,12 +254,17 @@ def _page(title: str, parts: list[str]) -> str:
 def write_report(fit, path, *, data=None, against=None, title: str | None = None,
                  progress=False, banding=None) -> str:
     """Validate on ``data`` (if given) and write the HTML report atomically; returns path.
+    The output path is checked first, so a bad one fails before the validation pass.
     ``banding``: the cost of banding of a tariff built from the model (a section)."""
-    from tallgam.outputs.modelfile import atomic_write_text
+    from tallgam.atomic import check_target, write_text
 
-    validation = fit.validate(data, against=against, progress=progress) if data is not None \
-        else None
-    atomic_write_text(path, html_report(fit, validation, title=title, banding=banding))
+    check_target(path)
+    validation = check = None
+    if data is not None:
+        validation = fit.validate(data, against=against, progress=progress)
+        check = fit.check(data)
+    write_text(path, html_report(fit, validation, title=title, check=check,
+                                 banding=banding))
     return str(path)
 
 

@@ -72,9 +72,10 @@ class FitResult:
         edf["total"] = float(np.sum(sol.edf))
         smoothing: dict = {}
         # in terms order (an eliminated random effect's λ comes last in sol.lam)
+        user = cons.user_smoothing(sol.lam)  # internal units → the user's (see terms)
         for k in sorted(range(len(cons.penalty_owner)), key=lambda k: cons.penalty_owner[k]):
             label = design.bases[cons.penalty_owner[k]].label
-            smoothing.setdefault(label, []).append(float(sol.lam[k]))
+            smoothing.setdefault(label, []).append(user[k])
         smoothing = {k: (v[0] if len(v) == 1 else v) for k, v in smoothing.items()}
         sc = fs.state.scalars
         n = sc["rows"]
@@ -323,6 +324,15 @@ class FitResult:
 
         return validate(self, data, against=against, batch_rows=batch_rows, progress=progress,
                         tuning=tuning)
+
+    def check(self, data, *, where: str | None = None):
+        """New data against the training profile: rows outside the training range,
+        unseen levels, missing values and the population stability index per input (see
+        :mod:`tallgam.outputs.datacheck`). Returns a
+        :class:`~tallgam.outputs.datacheck.DataCheck`."""
+        from tallgam.outputs.datacheck import check_data
+
+        return check_data(self, data, where=where)
 
     # ------------------------------------------------------------------ output
     def summary(self) -> str:

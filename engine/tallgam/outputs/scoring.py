@@ -17,9 +17,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from tallgam.data.inputs import O, model_inputs
+from tallgam.data.inputs import O, legacy_level_key, model_inputs
 from tallgam.data.sources import Source, quote
-from tallgam.errors import DataError, SpecError, TallgamWarning
+from tallgam.errors import DataError, SpecError, TallgamWarning, shorten
 from tallgam.options import RunOptions
 from tallgam.passes import kernels
 from tallgam.passes.design import Design, batch_columns
@@ -53,7 +53,7 @@ class Scorer:
     def __init__(self, fit, source: Source, *, with_offset: bool = True, unseen: str = "error",
                  keep: tuple[str, ...] = (), extra: dict[str, str] | None = None):
         if unseen not in UNSEEN:
-            raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {unseen!r}")
+            raise SpecError(f"unseen must be one of {', '.join(UNSEEN)}, got {shorten(unseen)}")
         self.fit = fit
         self.source = source
         self.design: Design = fit.design
@@ -67,6 +67,14 @@ class Scorer:
                                             for k in keep] + [
             f"{sql} AS {quote('__keep_' + name)}" for name, sql in extra.items()]
         self.report = ScoreReport()
+        # older model files keep whole numbers of floating-point columns as '3.0'; the data's
+        # keys ('3') are given the model's labels (see inputs.level_key)
+        self.relabel: dict[str, dict[str, str]] = {}
+        for b in self.design.bases:
+            for c, levels in b.level_sets().items():
+                old = {legacy_level_key(lev): lev for lev in levels if legacy_level_key(lev) != lev}
+                if old:
+                    self.relabel.setdefault(c, {}).update(old)
         beta = fit.coefficients_raw
         self.beta_d = np.ascontiguousarray(beta[:self.design.pd])
         self.beta_l = np.ascontiguousarray(beta[self.design.pd:])
@@ -82,6 +90,8 @@ class Scorer:
                                          batch_rows):
             cols = batch_columns(batch.select(range(len(self.inputs.select))),
                                  self.inputs.level_names)
+            for c, labels in self.relabel.items():
+                cols[c] = _relabel(cols[c], labels)
             self._check(cols, batch.num_rows)
             n = batch.num_rows
             eta = cols[O].copy() if self.inputs.has_offset else np.zeros(n)
@@ -142,18 +152,31 @@ class Scorer:
                         self.report.clamped[c] += outside
             for c, levels in b.level_sets().items():
                 arr = cols[c]
+                if arr.null_count:  # NULL is no level, so not an unseen one either
+                    raise DataError(f"column {c!r} has {arr.null_count} NULL/NaN value(s) in a "
+                                    f"batch of {n} rows to score; a missing value is not a level"
+                                    " (unseen='base' does not apply): fill or filter them first")
                 missing = _unknown(arr, levels)
                 if missing.any():
                     if self.unseen == "error":
                         ex = pc.unique(arr.filter(pa.array(missing))).to_pylist()[:5]
                         raise DataError(
                             f"{int(missing.sum())} row(s) in a batch of {n} have levels of "
-                            f"{c!r} not seen in training (e.g. {ex}); pass unseen='base' to "
-                            "give them the base level's effect (zero)")
+                            f"{c!r} not seen in training (e.g. "
+                            f"{', '.join(shorten(v) for v in ex)}); pass unseen='base' to give "
+                            "them the base level's effect (zero)")
                     self.report.unseen[c] += int(missing.sum())
         if O in cols and not np.all(np.isfinite(cols[O])):
             raise DataError("the offset/exposure is NULL, non-positive or non-finite in some "
                             "rows of the data to score")
+
+
+def _relabel(arr, labels: dict[str, str]):
+    """``arr`` (Arrow strings) with each value found in ``labels`` replaced by its label."""
+    arr = arr.cast(pa.string())
+    pos = pc.index_in(arr, value_set=pa.array(list(labels), pa.string()))
+    new = pa.array(list(labels.values()), pa.string()).take(pos)
+    return pc.if_else(pc.is_valid(pos), new, arr)
 
 
 def _unknown(arr, levels: list[str]) -> np.ndarray:
@@ -172,35 +195,26 @@ def score_to_parquet(fit, data, output_path, *, keep: tuple[str, ...] | list[str
     term. The file appears only when complete: rows go to a temporary file in the same
     folder, renamed at the end; an error or a kill leaves no output behind.
     """
-    import os
-    import tempfile
-
+    from tallgam.atomic import check_target, replacing
     from tallgam.data.sources import open_source
     from tallgam.progress import Event, make_callback
 
     batch_rows = RunOptions(batch_rows=batch_rows).batch_rows
     callback = make_callback(progress)
-    out = os.fspath(output_path)
-    folder = os.path.dirname(os.path.abspath(out))
-    if not os.path.isdir(folder):
-        raise DataError(f"the output folder {folder!r} does not exist")
+    check_target(output_path)   # a bad output path fails before any row is read
     source = open_source(data)
     owned = source is not data
-    fd, tmp = tempfile.mkstemp(prefix=".tallgam-score-", suffix=".parquet.tmp", dir=folder)
-    os.close(fd)
     try:
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
         callback(Event("start", "scoring"))
 
         def advance(done: int) -> None:
             callback(Event("advance", "scoring", rows=done))
-        done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
-                            on_rows=advance)
-        os.replace(tmp, out)
+        with replacing(output_path, "score") as tmp:
+            done = write_scores(scorer, tmp, se=se, terms=terms, batch_rows=batch_rows,
+                                on_rows=advance)
         callback(Event("end", "scoring", rows=done))
     finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
         if owned:
             source.close()
     scorer.report.warn()

@@ -40,22 +40,22 @@ class RelativityTables:
         import pyarrow.csv as pacsv
         import pyarrow.parquet as pq
 
-        from tallgam.outputs.modelfile import atomic_write_text
+        from tallgam.atomic import make_folder, replacing, write_text
 
-        os.makedirs(folder, exist_ok=True)
+        unknown = [f for f in formats if f not in ("csv", "parquet")]
+        if unknown:
+            raise SpecError(f"unknown table format {unknown[0]!r}; use csv or parquet")
+        make_folder(folder)
         paths = []
         for label, table in self.tables.items():
             stem = os.path.join(folder, file_stem(label))
             for fmt in formats:
                 path = f"{stem}.{fmt}"
-                tmp = path + ".tmp"
-                if fmt == "csv":
-                    pacsv.write_csv(table, tmp)
-                elif fmt == "parquet":
-                    pq.write_table(table, tmp)
-                else:
-                    raise SpecError(f"unknown table format {fmt!r}; use csv or parquet")
-                os.replace(tmp, path)
+                with replacing(path) as tmp:
+                    if fmt == "csv":
+                        pacsv.write_csv(table, tmp)
+                    else:
+                        pq.write_table(table, tmp)
                 paths.append(path)
         base = os.path.join(folder, "base.csv")
         lines = ["quantity,value", f"base_link,{self.base_link!r}"]
@@ -64,7 +64,7 @@ class RelativityTables:
         for label, ref in self.references.items():
             for col, value in ref.items():
                 lines.append(f"reference {label} {col},{value}")
-        atomic_write_text(base, "\n".join(lines) + "\n")
+        write_text(base, "\n".join(lines) + "\n")
         paths.append(base)
         return paths
 

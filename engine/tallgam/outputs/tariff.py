@@ -626,8 +626,9 @@ class Tariff:
         import pyarrow.csv as pacsv
         import pyarrow.parquet as pq
 
-        folder = os.fspath(folder)
-        os.makedirs(folder, exist_ok=True)
+        from tallgam.atomic import make_folder
+
+        folder = make_folder(folder)
         earlier = written_before(folder)
         paths = []
 
@@ -722,26 +723,14 @@ def table_bytes(table: pa.Table, writer) -> bytes:
 
 
 def write_output(path: str, payload: str | bytes) -> None:
-    """The one place tariff files are written: atomically, through a temporary file in the
-    same folder renamed over ``path`` (text through the model file's writer)."""
-    import tempfile
-
-    from tallgam.outputs.modelfile import atomic_write_text
+    """The one place tariff files are written: atomically (see :mod:`tallgam.atomic`)."""
+    from tallgam.atomic import replacing, write_text
 
     if not isinstance(payload, bytes):
-        atomic_write_text(path, payload)
+        write_text(path, payload)
         return
-    fd, tmp = tempfile.mkstemp(prefix=".tallgam-", suffix=".tmp",
-                               dir=os.path.dirname(os.path.abspath(path)))
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(payload)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with replacing(path) as tmp, open(tmp, "wb") as fh:
+        fh.write(payload)
 
 
 def clean_json(obj):

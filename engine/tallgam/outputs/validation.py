@@ -22,16 +22,15 @@ stays bounded whatever the number of rows. Definitions:
 from __future__ import annotations
 
 import os
-import tempfile
 from dataclasses import dataclass, field
 
-import duckdb
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from tallgam.data.inputs import W, Y, model_inputs
-from tallgam.data.sources import open_source, quote
+from tallgam.atomic import new_scratch_file
+from tallgam.data.inputs import W, Y, level_key, model_inputs
+from tallgam.data.sources import connect, open_source, quote
 from tallgam.errors import DataError
 from tallgam.options import DEFAULT_BATCH_ROWS, RunOptions, Tuning
 
@@ -113,7 +112,8 @@ def _score_to_scratch(fit, source, path, challenger, challenger_source, batch_ro
         extra["__e"] = f"CAST({inputs.exprs['__exposure']} AS DOUBLE)"
     factors = _model_columns(fit)
     for c, kind in factors.items():
-        extra[f"f:{c}"] = f"CAST({quote(c)} AS {'VARCHAR' if kind == 'levels' else 'DOUBLE'})"
+        extra[f"f:{c}"] = (level_key(quote(c)) if kind == "levels"
+                           else f"CAST({quote(c)} AS DOUBLE)")
     scorer = Scorer(fit, source, extra=extra)
     other = Scorer(challenger, challenger_source) if challenger is not None else None
     other_batches = other.batches(batch_rows) if other is not None else None
@@ -174,13 +174,13 @@ def validate(fit, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
     owned = source is not data
     # the challenger streams the same rows side by side, on a connection of its own
     second = open_source(data) if against is not None else None
-    fd, path = tempfile.mkstemp(prefix="tallgam-holdout-", suffix=".parquet", dir=scratch_dir)
-    os.close(fd)
+    path = None
     try:
+        path = new_scratch_file("holdout", ".parquet", scratch_dir)
         sums = _score_to_scratch(fit, source, path, against, second, batch_rows, progress)
         return _tables(fit, path, sums, against, options.tuning.tables_memory)
     finally:
-        if os.path.exists(path):
+        if path is not None and os.path.exists(path):
             os.remove(path)
         if owned:
             source.close()
@@ -189,7 +189,7 @@ def validate(fit, data, *, against=None, batch_rows: int = DEFAULT_BATCH_ROWS,
 
 
 def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Validation:
-    con = duckdb.connect()
+    con = connect()
     if memory:
         con.execute(f"SET memory_limit = '{memory}'")
         con.execute("SET preserve_insertion_order = false")

@@ -27,7 +27,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
-from tallgam.data.sources import Source, expand_paths, file_kind, quote
+from tallgam.atomic import output_error, owned_name
+from tallgam.data.sources import Source, connect, file_kind, quote
 from tallgam.errors import DataError, SpecError, TallgamError, TallgamWarning
 from tallgam.options import RunOptions, Tuning
 from tallgam.progress import Event
@@ -80,12 +81,6 @@ class Partition:
         return f"partition {self.index + 1} of {self.count} ({where})"
 
 
-def _data_items(data, source: Source) -> list:
-    if isinstance(data, Source) or data is source:
-        return list(source.files)
-    return [data] if isinstance(data, (str, os.PathLike)) else list(data)
-
-
 def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[Partition]:
     """The partitions of a file source (``source`` is ``open_source(data)``).
 
@@ -97,8 +92,8 @@ def partitions_of(data, source: Source, *, min_rows: int | None = None) -> list[
             f"Parquet/CSV files or a hive-partitioned directory on storage the workers share); "
             f"{source.label} exists only in this process. Write it to Parquet on shared "
             "storage first, or fit without cluster=")
-    given, hive = expand_paths(_data_items(data, source))
-    kind = file_kind(given)
+    given, hive = source.files, source.hive
+    kind = source.kind or file_kind(given)
     files = [os.path.abspath(f) for f in given]   # workers have another working directory
     schema = tuple(source.schema.items())
     hive_types = None
@@ -153,9 +148,7 @@ def open_partition(part: Partition, threads: int | None = None) -> Source:
     """Open one partition as a :class:`Source` (on a worker, or here in tests)."""
     import duckdb
 
-    con = duckdb.connect()
-    if threads:
-        con.execute(f"SET threads = {int(threads)}")
+    con = connect(threads=threads)
     options = []
     if part.hive_types is not None:
         options.append("hive_partitioning = true")
@@ -287,7 +280,7 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
             raise Abandoned("another part failed; scoring was abandoned")
     stop()
     final = os.path.join(folder, PART_NAME.format(part.index))
-    tmp = os.path.join(folder, f".{PART_NAME.format(part.index)}.{uuid.uuid4().hex[:10]}.tmp")
+    tmp = os.path.join(folder, owned_name("part", f"-{PART_NAME.format(part.index)}.tmp"))
     with _task_threads(threads) as n:
         source = open_partition(part, n)
         try:
@@ -302,6 +295,8 @@ def score_task(part: Partition, fit, folder: str, options: dict, threads: int | 
             return scorer.report
         except TallgamError as exc:
             raise _in_partition(part, exc) from exc
+        except OSError as exc:  # the worker's disk is full, say
+            raise _in_partition(part, output_error(exc, final)) from exc
         finally:
             if os.path.exists(tmp):
                 os.remove(tmp)
@@ -521,7 +516,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
     """Score ``data`` on a Dask cluster into a directory of Parquet part files; returns
     the :class:`~tallgam.outputs.scoring.ScoreReport`.
 
-    One task per partition of ``data`` (see :mod:`tallgam.cluster`); each writes
+    One task per partition of ``data`` (see above); each writes
     ``part-NNNNN.parquet`` (NNNNN: the partition number; a partition without rows writes
     none) into a hidden temporary directory beside ``output_dir``, under a temporary name
     renamed when complete. The directory is renamed to ``output_dir`` only when every part
@@ -531,12 +526,13 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
     """
     import re
     import shutil
-    import tempfile
 
     import pyarrow as pa
     import pyarrow.parquet as pq
 
+    from tallgam.atomic import check_folder, install_folder, new_folder
     from tallgam.data.sources import open_source
+    from tallgam.errors import OutputError
     from tallgam.outputs.scoring import Scorer
     from tallgam.progress import make_callback
 
@@ -544,17 +540,15 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
     batch_rows, threads = options.batch_rows, options.threads
     callback = make_callback(progress)
     out = os.path.abspath(os.fspath(output_dir))
-    folder = os.path.dirname(out)
-    if not os.path.isdir(folder):
-        raise DataError(f"the output folder {folder!r} does not exist")
-    if os.path.isfile(out):
-        raise DataError(f"{out!r} is a file; scoring on a cluster writes a directory of part "
-                        "files: give a directory name")
+    folder = check_folder(os.path.dirname(out))
+    if os.path.lexists(out) and not os.path.isdir(out):
+        raise OutputError(f"{out!r} is a file; scoring on a cluster writes a folder of part "
+                          "files: give a folder name")
     if os.path.isdir(out):
         other = [e for e in sorted(os.listdir(out)) if not re.fullmatch(_PART_PATTERN, e)]
         if other:
-            raise DataError(f"the output directory {out!r} exists and holds other files than "
-                            f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
+            raise OutputError(f"the output folder {out!r} exists and holds other files than "
+                              f"scoring parts (e.g. {other[0]!r}); remove it or choose another")
     source = open_source(data)
     owned = source is not data
     session = tmp = None
@@ -563,10 +557,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
         scorer = Scorer(fit, source, with_offset=with_offset, unseen=unseen, keep=tuple(keep))
         parts = partitions_of(data, source)
         session = ClusterSession(cluster)
-        tmp = tempfile.mkdtemp(prefix=".tallgam-score-", dir=folder)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)  # workers may run as another user
+        tmp = new_folder(folder, "score")  # mode 0777 less the umask: workers may be others
         session.check(sorted({f for p in parts for f in p.files}), [tmp])
         options = {"keep": tuple(keep), "terms": terms, "se": se, "with_offset": with_offset,
                    "unseen": unseen, "batch_rows": int(batch_rows)}
@@ -593,17 +584,7 @@ def score_to_directory(fit, data, output_dir, *, cluster, keep: tuple[str, ...] 
             names = list(keep) + ["prediction", "link"]
             pq.write_table(pa.table({n: pa.array([], pa.float64()) for n in names}),
                            os.path.join(tmp, PART_NAME.format(0)))
-        if os.path.isdir(out):
-            old = os.path.join(folder, f".tallgam-old-{uuid.uuid4().hex[:10]}")
-            os.rename(out, old)
-            try:
-                os.rename(tmp, out)
-            except BaseException:
-                os.rename(old, out)
-                raise
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.rename(tmp, out)
+        install_folder(tmp, out)
         tmp = None
         callback(Event("end", "scoring", rows=done[0]))
     finally:

@@ -172,7 +172,7 @@ def quadratic_form_rows_eliminated(idx, val, lev, pd, position, cov, e_start, e_
         out[i] = s
 
 
-# --------------------------------------------------------------------------- discretized
+# --------------------------------------------------------------------------- binned
 # Rows arrive as codes (n × F): for every term, the row of that term's table of distinct
 # design rows (see :mod:`tallgam.discrete`); vec_off[f] is the first per-code slot of term f.
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.interpolate import BSpline, PPoly
 
+from tallgam.data.inputs import legacy_level_key, level_key
 from tallgam.data.sources import quote
 from tallgam.errors import SpecError
 
@@ -39,9 +40,12 @@ def text(value: str) -> str:
 
 
 def levels_case(name: str, labels: list[str], values: list[str], otherwise: str) -> str:
-    """CASE over the levels of a column: ``values[i]`` for ``labels[i]``."""
-    col = f"CAST({quote(name)} AS VARCHAR)"
-    whens = " ".join(f"WHEN {text(lev)} THEN {v}" for lev, v in zip(labels, values))
+    """CASE over the levels of a column: ``values[i]`` for ``labels[i]``, the column read
+    as the level key fitting used (:func:`tallgam.data.inputs.level_key`; labels of older
+    model files mapped to today's keys)."""
+    col = level_key(quote(name))
+    whens = " ".join(f"WHEN {text(legacy_level_key(lev))} THEN {v}"
+                     for lev, v in zip(labels, values))
     return f"(CASE {col} {whens} ELSE {otherwise} END)"
 
 
