@@ -335,6 +335,7 @@ def test_band_specifications_and_their_errors(book, tmp_path):
                                                                            60]})))
 
 
+@pytest.mark.slow
 def test_cli_tariff_writes_the_folder_and_the_cost(book, tmp_path):
     glob, freq, sev, _ = book
     freq.save(tmp_path / "freq.json")
