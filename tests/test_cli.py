@@ -201,5 +201,7 @@ def test_model_file_error_exit_5(tmp_path):
 def test_demo_small(tmp_path):
     proc = run("demo", "--rows", "30000", "--dir", str(tmp_path / "demo"), "--quiet")
     assert "claim-frequency" in proc.stdout and "qualified actuary" in proc.stdout
-    for name in ("frequency.json", "severity.json", "scored_frequency.parquet"):
+    for name in ("frequency.json", "severity.json", "scored_frequency.parquet",
+                 "tariff/manifest.json", "tariff/tariff.sql", "tariff/cost_summary.csv"):
         assert os.path.exists(tmp_path / "demo" / name)
+    assert "premium moves by more than 5%" in proc.stdout

@@ -1,4 +1,4 @@
-"""The ``tallgam`` command line: fit, show, score, sql, tables, validate, report, demo.
+"""The ``tallgam`` command line: fit, show, score, sql, tables, validate, report, tariff, demo.
 
 Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
 column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
@@ -234,6 +234,38 @@ def cmd_report(args) -> int:
     return EXIT_OK
 
 
+def cmd_tariff(args) -> int:
+    from tallgam.outputs.report import CAUTION
+    from tallgam.outputs.tariff import tariff
+
+    if len(args.models) > 2:
+        raise SpecError("give one model, or a frequency and a severity model")
+    if args.where and not args.data:
+        raise SpecError("--where filters the hold-out: give --data too")
+    reference = {}
+    for item in args.reference or []:
+        col, sep, value = item.partition("=")
+        if not sep or not col:
+            raise SpecError(f"--reference takes COLUMN=VALUE, got {item!r}")
+        reference[col] = value
+    built = tariff(*args.models, bands=args.bands, tolerance=args.tolerance,
+                   min_exposure=args.min_exposure, reference=reference,
+                   training=args.training, batch_rows=args.batch_rows,
+                   progress=_progress(args))
+    cost = None
+    if args.data:
+        cost = built.cost(args.data, where=args.where, actual=args.actual, power=args.power,
+                          batch_rows=args.batch_rows, progress=_progress(args))
+    paths = built.write(args.output, cost=cost)
+    if not args.quiet:
+        print(built.summary())
+        if cost is not None:
+            print("\n" + cost.summary())
+        print(f"\n{CAUTION}")
+    print(f"tariff written to {args.output} ({len(paths)} files)", file=sys.stderr)
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from tallgam.demo import run_demo
     from tallgam.outputs.report import CAUTION
@@ -360,6 +392,37 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--title", help="report title")
     common(r)
     r.set_defaults(func=cmd_report)
+
+    tf = sub.add_parser("tariff", help="a banded rating tariff from one model, or a pure "
+                                        "premium from a frequency and a severity model")
+    tf.add_argument("models", nargs="+", metavar="MODEL",
+                    help="the model file, or the frequency and the severity model files")
+    tf.add_argument("-o", "--output", required=True, help="folder for the tariff")
+    tf.add_argument("--bands", metavar="SPEC",
+                    help="TOML file with a [bands] table (cut points, auto, each, none, "
+                         "level groups) and an optional [tariff] table; a model spec file "
+                         "holding them will do (default: automatic bands)")
+    tf.add_argument("--tolerance", type=float, default=None,
+                    help="automatic bands keep the fitted relativity within this share of "
+                         "the band's value (default 0.02)")
+    tf.add_argument("--min-exposure", type=float, default=None,
+                    help="training exposure a band should hold (default 1%% of the total)")
+    tf.add_argument("--reference", action="append", metavar="COLUMN=VALUE",
+                    help="reference value or level of a column; repeatable")
+    tf.add_argument("--training", metavar="DATA",
+                    help="the first model's training data: exact band values and exposures "
+                         "from its rows instead of the model file's histograms")
+    tf.add_argument("--data", help="hold-out data: measure the cost of banding on it")
+    tf.add_argument("--where", help="SQL filter of the hold-out data (with --data)")
+    tf.add_argument("--actual", metavar="SQL",
+                    help="pure premium: the actual amount per row (default: frequency "
+                         "response × severity response)")
+    tf.add_argument("--power", type=float, default=None,
+                    help="pure premium: Tweedie power of the deviance (default: from the "
+                         "severity model's gamma shape)")
+    tf.add_argument("--batch-rows", type=int, default=1_000_000)
+    common(tf)
+    tf.set_defaults(func=cmd_tariff)
 
     d = sub.add_parser("demo", help="write an invented motor book, fit, summarise and score")
     d.add_argument("--rows", type=int, default=1_000_000)

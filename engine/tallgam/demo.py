@@ -3,7 +3,8 @@
 :func:`write_book` writes the book as Parquet in chunks (bounded memory at any size, the
 same rows for the same seed whatever the chunking). :func:`run_demo` writes the book,
 fits a claim-frequency model (poisson, exposure) and a claim-severity model (gamma on the
-average claim, claim counts as weights), saves both model files and scores the book.
+average claim, claim counts as weights), saves both model files, builds a banded
+pure-premium tariff with the cost of banding on the hold-out year, and scores the book.
 The scenario is invented; nothing here describes a real portfolio.
 """
 
@@ -130,6 +131,8 @@ class DemoResult:
     expected_claims: float
     reports: list[str]
     tables: list[str]
+    tariff: str = ""        # the tariff folder
+    cost: object = None     # the cost of banding on the hold-out (BandingCost)
 
 
 TRAIN = "policy_year <= 2023"   # the demo fits on three years and holds out the fourth
@@ -172,8 +175,9 @@ BINNED_ROWS = 5_000_000  # books of this size and over are fitted with binned=Tr
 def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
              echo: Callable[[str], None] = lambda s: None) -> DemoResult:
     """Write the book; fit frequency (and a banded challenger) and severity on 2021–2023;
-    save the models; write relativity tables; validate on 2024 into HTML reports; score
-    the whole book."""
+    save the models; write relativity tables; build the pure-premium tariff and measure
+    its cost of banding on 2024; validate on 2024 into HTML reports; score the whole
+    book."""
     import tallgam as tg
     from tallgam.data.sources import connect
 
@@ -203,7 +207,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     for name, fit in (("frequency", freq), ("severity", sev)):
         tables += fit.relativities().write(os.path.join(folder, "tables", name))
     echo(f"relativity tables written to {os.path.join(folder, 'tables')}")
-    reports = _reports(folder, freq, banded, sev, holdout, glob, progress, echo)
+    tariff_dir, cost = _tariff(folder, freq, sev, glob, progress, echo)
+    reports = _reports(folder, freq, banded, sev, holdout, glob, progress, echo, cost)
     scored = os.path.join(folder, "scored_frequency.parquet")
     echo(f"scoring the whole book with the frequency model into {scored}")
     freq.score(glob, scored, keep=["policy_id", "claim_count"], progress=progress)
@@ -212,10 +217,27 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
         "SELECT sum(claim_count), sum(prediction) FROM read_parquet(?)", [scored]).fetchall()[0]
     con.close()
     return DemoResult(folder, book, freq, sev, scored, float(actual), float(expected),
-                      reports, tables)
+                      reports, tables, tariff_dir, cost)
 
 
-def _reports(folder, freq, banded, sev, holdout, glob, progress, echo) -> list[str]:
+def _tariff(folder, freq, sev, glob, progress, echo):
+    """The pure-premium tariff of the demo book (automatic bands, ±2%), with the cost of
+    banding measured on the 2024 hold-out."""
+    import tallgam as tg
+
+    out = os.path.join(folder, "tariff")
+    echo("building a pure-premium tariff (frequency × severity, automatic bands within ±2%)")
+    tariff = tg.tariff(freq, sev, tolerance=0.02)
+    echo(tariff.summary())
+    cost = tariff.cost(glob, where=HOLDOUT, progress=progress)
+    echo(cost.summary())
+    tariff.write(out, cost=cost)
+    echo(f"tariff written to {out}")
+    return out, cost
+
+
+def _reports(folder, freq, banded, sev, holdout, glob, progress, echo, cost=None
+             ) -> list[str]:
     try:
         import matplotlib  # noqa: F401
     except ImportError:
@@ -231,7 +253,7 @@ def _reports(folder, freq, banded, sev, holdout, glob, progress, echo) -> list[s
     out = [
         write_report(freq, os.path.join(folder, "report_frequency.html"), data=holdout,
                      against=banded, title="Claim frequency — demo motor book",
-                     progress=progress),
+                     progress=progress, banding=cost),
         write_report(sev, os.path.join(folder, "report_severity.html"), data=sev_holdout,
                      title="Claim severity — demo motor book", progress=progress),
     ]

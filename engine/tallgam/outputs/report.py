@@ -168,9 +168,11 @@ def _profile_table(fit) -> str:
     return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
 
 
-def html_report(fit, validation=None, *, title: str | None = None, check=None) -> str:
+def html_report(fit, validation=None, *, title: str | None = None, check=None,
+                banding=None) -> str:
     """One self-contained HTML page: summary, every term's figure and table, the data
-    profile, hold-out validation (if given) and the cautions. Images are embedded."""
+    profile, hold-out validation (if given), the cost of banding of a tariff built from
+    the model (``banding``, from ``Tariff.cost``) and the cautions. Images are embedded."""
     from tallgam.outputs import plots
 
     log_link = fit.model.link.multiplicative
@@ -182,7 +184,9 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
              f'{fit.statistics["rows"]:,} training rows</p>',
              f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
              '<nav><a href="#summary">Summary</a><a href="#terms">Terms</a>'
-             '<a href="#validation">Validation</a><a href="#data">Data</a></nav>',
+             '<a href="#validation">Validation</a>'
+             + ('<a href="#tariff">Tariff</a>' if banding is not None else "")
+             + '<a href="#data">Data</a></nav>',
              '<h2 id="summary">Summary</h2>', f"<pre>{_esc(summary_text(fit))}</pre>"]
     if rel.base_rate is not None:
         parts.append(f"<p>Base rate at the reference point: <strong>{rel.base_rate:.6g}"
@@ -228,12 +232,18 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
     if check is not None:
         parts.append('<h3 id="check">The hold-out against the training data</h3>')
         parts.append(f"<pre>{_esc(check.summary())}</pre>")
+    if banding is not None:
+        parts.append(banding_section(banding))
     parts.append('<h2 id="data">Training data</h2>')
     parts.append(f"<p>{fit.profile.rows:,} rows"
                  + (f", filter <code>{_esc(fit.model.where)}</code>" if fit.model.where else "")
                  + ".</p>")
     parts.append(_profile_table(fit))
     parts.append(f'<div class="caution">{_esc(CAUTION)}</div>')
+    return _page(title, parts)
+
+
+def _page(title: str, parts: list[str]) -> str:
     body = "\n".join(parts)
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
             f'<meta name="viewport" content="width=device-width, initial-scale=1">'
@@ -242,9 +252,10 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
 
 
 def write_report(fit, path, *, data=None, against=None, title: str | None = None,
-                 progress=False) -> str:
+                 progress=False, banding=None) -> str:
     """Validate on ``data`` (if given) and write the HTML report atomically; returns path.
-    The output path is checked first, so a bad one fails before the validation pass."""
+    The output path is checked first, so a bad one fails before the validation pass.
+    ``banding``: the cost of banding of a tariff built from the model (a section)."""
     from tallgam.atomic import check_target, write_text
 
     check_target(path)
@@ -252,5 +263,47 @@ def write_report(fit, path, *, data=None, against=None, title: str | None = None
     if data is not None:
         validation = fit.validate(data, against=against, progress=progress)
         check = fit.check(data)
-    write_text(path, html_report(fit, validation, title=title, check=check))
+    write_text(path, html_report(fit, validation, title=title, check=check,
+                                 banding=banding))
     return str(path)
+
+
+def banding_section(cost) -> str:
+    """HTML of the cost of banding (:class:`~tallgam.outputs.banding_cost.BandingCost`):
+    the cost table, how far premiums move, and per banded factor its bands against the
+    fitted curve and actual over expected of tariff and model."""
+    from tallgam.outputs import plots
+
+    t = cost.threshold
+    parts = ['<h2 id="tariff">Tariff: the cost of banding</h2>',
+             f"<p>The banded tariff against the smooth model(s) ({_esc(', '.join(cost.models))})"
+             f" on {cost.rows:,} hold-out rows. The premium of "
+             f"<strong>{100 * cost.moved:.2f}%</strong> of policies moves by more than "
+             f"{100 * t:g}% ({100 * cost.moved_up:.2f}% up, {100 * cost.moved_down:.2f}% down; "
+             f"{100 * cost.moved_exposure:.2f}% of exposure).</p>",
+             _html_table(cost.table()),
+             f'<p class="note">deviance: {_esc(cost.deviance_note)}</p>',
+             _img(plots.to_png(plots.premium_ratio_figure(cost.ratio_bands, t)),
+                  "ratio of tariff to model premium"),
+             '<div class="grid">' + _html_table(cost.ratio_bands)
+             + _html_table(cost.ratio_quantiles) + "</div>",
+             "<h3>Double lift: bands of the ratio tariff / model premium</h3>",
+             _html_table(cost.double_lift)]
+    for name, table in cost.by_band.items():
+        parts.append(f"<h3>{_esc(name)}</h3>")
+        curve = cost.curves.get(name)
+        if curve is not None:
+            parts.append(_img(plots.to_png(plots.banded_curve_figure(curve, name)),
+                              f"fitted relativity and tariff bands of {name}"))
+        parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, name)),
+                          f"actual versus expected by band of {name}"))
+        parts.append(_html_table(table))
+    return "\n".join(parts)
+
+
+def banding_page(cost, *, title: str = "The cost of banding") -> str:
+    """A self-contained HTML page of the cost of banding, with the cautions."""
+    parts = [f"<h1>{_esc(title)}</h1>",
+             f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
+             banding_section(cost), f'<div class="caution">{_esc(CAUTION)}</div>']
+    return _page(title, parts)
