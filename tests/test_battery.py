@@ -987,3 +987,123 @@ def test_cluster_part_folder_follows_the_umask(fitted, tmp_path):
     for p in out.iterdir():
         assert stat.S_IMODE(p.stat().st_mode) == 0o644
     assert leftovers(tmp_path) == []
+
+
+# ---------------------------------------------------------------------------------------
+# scales, memory, run options and response rules (engine side)
+
+
+def _smooth_frame(n=1500, seed=4):
+    # synthetic truth: a sine of x in [0, 1] with gaussian noise
+    rng = np.random.default_rng(seed)
+    x = rng.uniform(0, 1, n)
+    return pd.DataFrame({"x": x, "y": np.sin(6 * x) + rng.normal(0, 0.3, n)})
+
+
+@pytest.fixture(scope="module")
+def unit_fit():
+    return tg.Model("y", terms=[tg.spline("x", size=8)]).fit(_smooth_frame())
+
+
+@pytest.mark.parametrize("scale", [1e300, 1e150, 1e-150, 1e-300, 2.0 ** 40, 3e-7])
+def test_a_covariate_on_any_scale_gives_the_same_smooth(unit_fit, scale):
+    # the penalty is built in internal units (a power of two near the column's span): the
+    # fit in x·scale must be the fit in x (same EDF and fitted values), not unpenalized
+    df = _smooth_frame()
+    fit = tg.Model("y", terms=[tg.spline("x", size=8)]).fit(df.assign(x=df.x * scale))
+    assert fit.edf["spline(x)"] == pytest.approx(unit_fit.edf["spline(x)"], rel=1e-6)
+    np.testing.assert_allclose(fit.predict(df.assign(x=df.x * scale)),
+                               unit_fit.predict(df), rtol=1e-7, atol=1e-9)
+
+
+@pytest.mark.parametrize("scale", [1e300, 1e-300])
+def test_a_linear_term_on_any_scale_is_fitted(scale):
+    df = _smooth_frame()
+    ref = tg.Model("y", terms=[tg.linear("x")]).fit(df)
+    fit = tg.Model("y", terms=[tg.linear("x")]).fit(df.assign(x=df.x * scale))
+    np.testing.assert_allclose(fit.predict(df.assign(x=df.x * scale)), ref.predict(df),
+                               rtol=1e-9)
+
+
+@pytest.mark.parametrize("scale", [1e300, 1e120, 1e-300, 1e-120])
+def test_a_response_beyond_double_precision_squares_is_refused(scale):
+    df = _smooth_frame()
+    with pytest.raises(tg.DataError, match="response 'y'.*(overflow|underflow).*Rescale"):
+        tg.Model("y", terms=[tg.spline("x", size=8)]).fit(df.assign(y=df.y * scale))
+
+
+def test_a_fixed_smoothing_means_the_same_in_any_units():
+    # λ∫f''(x)²dx: with x in units a thousand times larger, the same curve needs λ·1000³
+    df = _smooth_frame()
+    a = tg.Model("y", criterion="fixed", terms=[tg.spline("x", size=8, smoothing=1e-3)]
+                 ).fit(df)
+    b = tg.Model("y", criterion="fixed", terms=[tg.spline("x", size=8, smoothing=1e6)]
+                 ).fit(df.assign(x=df.x * 1000.0))
+    np.testing.assert_allclose(b.predict(df.assign(x=df.x * 1000.0)), a.predict(df),
+                               rtol=1e-9)
+    assert b.smoothing["spline(x)"] == pytest.approx(1e6, rel=1e-12)
+
+
+def test_a_categorical_with_many_levels_is_refused_before_any_pass():
+    rng = np.random.default_rng(0)
+    n = 120_000
+    df = pd.DataFrame({"g": rng.integers(0, 100_000, n).astype(str), "y": rng.normal(size=n)})
+    with pytest.raises(tg.OutOfMemoryError, match=r"categorical\(g\).*random_effect"):
+        tg.Model("y", terms=[tg.categorical("g")]).fit(df)
+    # the same column as a random effect is eliminated and fits
+    assert tg.Model("y", terms=[tg.random_effect("g")]).fit(df).converged
+
+
+def test_the_memory_limit_is_a_tuning_value():
+    df = _smooth_frame()
+    with pytest.raises(tg.OutOfMemoryError, match="more than the 0.0 GiB"):
+        tg.Model("y", terms=[tg.spline("x", size=8)]).fit(
+            df, tuning=tg.Tuning(memory_limit=1000))
+
+
+@pytest.mark.parametrize("size", [10**7, 2001, 3.5, "12", True])
+def test_spline_sizes_beyond_reason_are_refused_at_once(size):
+    with pytest.raises(tg.SpecError, match="size"):
+        tg.spline("x", size=size)
+
+
+@pytest.mark.parametrize("size", [(8, 10**6), (10**6, 8)])
+def test_surface_sizes_beyond_reason_are_refused_at_once(size):
+    with pytest.raises(tg.SpecError, match="size"):
+        tg.surface("a", "b", size=size)
+
+
+BAD_OPTIONS = [("batch_rows", 0), ("batch_rows", -5), ("batch_rows", 2.5),
+               ("batch_rows", "many"), ("threads", 0), ("threads", -1)]
+
+
+@pytest.mark.parametrize("entry,option,value",
+                         [(e, o, v) for e in ("fit", "predict", "score", "validate")
+                          for o, v in BAD_OPTIONS if o == "batch_rows" or e == "fit"])
+def test_bad_run_options_are_refused_the_same_way_everywhere(unit_fit, tmp_path, entry,
+                                                             option, value):
+    df = _smooth_frame(200)
+    calls = {"fit": lambda **kw: tg.Model("y", terms=[tg.spline("x", size=8)]).fit(df, **kw),
+             "predict": lambda **kw: unit_fit.predict(df, **kw),
+             "score": lambda **kw: unit_fit.score(df, tmp_path / "s.parquet", **kw),
+             "validate": lambda **kw: unit_fit.validate(df, **kw)}
+    with pytest.raises(tg.SpecError, match=f"{option} must be a positive whole number"):
+        calls[entry](**{option: value})
+    assert not (tmp_path / "s.parquet").exists()
+
+
+@pytest.mark.parametrize("y,weights,ok", [(0.5, None, False), (0.25, None, False),
+                                          (0.5, 4.0, True), (1.0, None, True)])
+def test_binomial_proportions_need_their_trials(y, weights, ok):
+    rng = np.random.default_rng(1)
+    n = 400
+    df = pd.DataFrame({"x": rng.uniform(size=n), "w": np.full(n, weights or 1.0),
+                       "y": (rng.uniform(size=n) < 0.4).astype(float)})
+    df.loc[:9, "y"] = y
+    model = tg.Model("y", family="binomial", weights="w" if weights else None,
+                     terms=[tg.linear("x")])
+    if ok:
+        assert model.fit(df).converged
+    else:
+        with pytest.raises(tg.DataError, match="no numbers of trials"):
+            model.fit(df)

@@ -204,5 +204,6 @@ def test_demo_small(tmp_path):
     proc = run("demo", "--rows", "30000", "--dir", str(tmp_path / "demo"), "--quiet")
     assert proc.stdout == ""
     for name in ("frequency.json", "severity.json", "scored_frequency.parquet",
-                 "frequency.toml", "severity.toml", "tables/frequency/notes.txt"):
+                 "frequency.toml", "severity.toml", "tables/frequency/notes.txt",
+                 "tariff/manifest.json", "tariff/tariff.sql", "tariff/cost_summary.csv"):
         assert os.path.exists(tmp_path / "demo" / name)

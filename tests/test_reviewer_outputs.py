@@ -56,6 +56,7 @@ def demo(tmp_path_factory):
     printed = out.getvalue()
     assert "claim frequency" in printed and "qualified actuary" in printed
     assert "spec files to copy from" in printed
+    assert "premium moves by more than 5%" in printed  # the tariff step's cost of banding
     for name in ("frequency.toml", "severity.toml", "frequency_banded.toml",
                  "tables/frequency/notes.txt", "report_frequency.html"):
         assert (folder / name).exists(), name
@@ -287,7 +288,11 @@ def test_one_source_syntax_and_one_output_option_across_verbs():
             assert actions["source"].metavar == "SOURCE"
         if "output" in actions:
             assert actions["output"].option_strings == ["-o", "--output"], name
-        assert "data" not in actions, f"{name}: the data is SOURCE or --sql, not --data"
+        if name == "tariff":  # its positionals are the models: the hold-out is named
+            assert {"data", "sql", "database", "where"} <= set(actions)
+            assert actions["data"].metavar == "SOURCE"
+        else:
+            assert "data" not in actions, f"{name}: the data is SOURCE or --sql, not --data"
         if name not in ("show",):
             assert "quiet" in actions, name
 

@@ -27,6 +27,8 @@ _PUBLIC = {
     "categorical": "tallgam.terms",
     "random_effect": "tallgam.terms",
     "adjacency": "tallgam.terms",
+    "tariff": "tallgam.outputs.tariff",
+    "Tariff": "tallgam.outputs.tariff",
     "get_family": "tallgam.families",
     "get_link": "tallgam.families.links",
     "ColumnNotFound": "tallgam.errors",

@@ -1,4 +1,5 @@
-"""The ``tallgam`` command line: fit, show, score, sql, tables, validate, report, demo.
+"""The ``tallgam`` command line: fit, show, score, sql, tables, validate, check, report,
+tariff, demo.
 
 Exit codes: 0 success; 1 unexpected failure; 2 usage or spec error (unknown key, unknown
 column, bad family); 3 data error (NULLs, values outside the family's support, unreadable
@@ -280,6 +281,47 @@ def cmd_report(args) -> int:
     return EXIT_OK
 
 
+def cmd_tariff(args) -> int:
+    from tallgam.outputs.formatting import CAUTION
+    from tallgam.outputs.tariff import tariff
+
+    if len(args.models) > 2:
+        raise SpecError("give one model, or a frequency and a severity model")
+    if args.sql is not None and args.data is not None:
+        raise SpecError("give the hold-out either with --data or with --sql, not both")
+    if args.database is not None and args.sql is None:
+        raise SpecError("--database names the DuckDB file that --sql reads; give --sql too")
+    holdout = args.data
+    if args.sql is not None:
+        from tallgam.data.sources import sql
+
+        holdout = sql(args.sql, database=args.database)
+    if args.where and holdout is None:
+        raise SpecError("--where filters the hold-out: give --data (or --sql) too")
+    reference = {}
+    for item in args.reference or []:
+        col, sep, value = item.partition("=")
+        if not sep or not col:
+            raise SpecError(f"--reference takes COLUMN=VALUE, got {item!r}")
+        reference[col] = value
+    built = tariff(*args.models, bands=args.bands, tolerance=args.tolerance,
+                   min_exposure=args.min_exposure, reference=reference,
+                   training=args.training, batch_rows=args.batch_rows,
+                   progress=_progress(args))
+    cost = None
+    if holdout is not None:
+        cost = built.cost(holdout, where=args.where, actual=args.actual, power=args.power,
+                          batch_rows=args.batch_rows, progress=_progress(args))
+    paths = built.write(args.output, cost=cost)
+    if not args.quiet:
+        print(built.summary())
+        if cost is not None:
+            print("\n" + cost.summary())
+        print(f"\nCaution: {CAUTION}")
+    _say(args, f"tariff written to {args.output} ({len(paths)} files)")
+    return EXIT_OK
+
+
 def cmd_demo(args) -> int:
     from tallgam.demo import run_demo
     from tallgam.outputs.formatting import CAUTION
@@ -484,6 +526,46 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--title", help="the report's title (default: Model of RESPONSE)")
     quiet(r)
     r.set_defaults(func=cmd_report)
+
+    tf = sub.add_parser("tariff", help="a banded rating tariff from one model, or a pure "
+                                        "premium from a frequency and a severity model")
+    tf.add_argument("models", nargs="+", metavar="MODEL",
+                    help="the model file, or the frequency and the severity model files")
+    tf.add_argument("-o", "--output", required=True, metavar="FOLDER",
+                    help="folder for the tariff")
+    tf.add_argument("--bands", metavar="SPEC",
+                    help="TOML file with a [bands] table (cut points, auto, each, none, "
+                         "level groups) and an optional [tariff] table; a model spec file "
+                         "holding them will do (default: automatic bands)")
+    tf.add_argument("--tolerance", type=float, default=None,
+                    help="automatic bands keep the fitted relativity within this share of "
+                         "the band's value (default 0.02)")
+    tf.add_argument("--min-exposure", type=float, default=None,
+                    help="training exposure a band should hold (default 1%% of the total)")
+    tf.add_argument("--reference", action="append", metavar="COLUMN=VALUE",
+                    help="reference value or level of a column; repeatable")
+    tf.add_argument("--training", metavar="DATA",
+                    help="the first model's training data: exact band values and exposures "
+                         "from its rows instead of the model file's histograms")
+    # the positionals are the models, so the hold-out is named: --data SOURCE or --sql
+    tf.add_argument("--data", metavar="SOURCE",
+                    help="hold-out data (file, glob or folder): measure the cost of banding "
+                         "on it")
+    tf.add_argument("--sql", metavar="QUERY", default=None,
+                    help="the hold-out as the rows of a DuckDB SQL query instead of --data")
+    tf.add_argument("--database", metavar="FILE", default=None,
+                    help="with --sql: a DuckDB database file to run the query in (read-only)")
+    tf.add_argument("--where", metavar="CONDITION",
+                    help="keep only the hold-out rows meeting this SQL condition")
+    tf.add_argument("--actual", metavar="SQL",
+                    help="pure premium: the actual amount per row (default: frequency "
+                         "response × severity response)")
+    tf.add_argument("--power", type=float, default=None,
+                    help="pure premium: Tweedie power of the deviance (default: from the "
+                         "severity model's gamma shape)")
+    batch_rows(tf, 1_000_000)
+    quiet(tf)
+    tf.set_defaults(func=cmd_tariff)
 
     d = sub.add_parser("demo", help="write an invented motor book, fit, summarise, report and "
                                     "score",

@@ -5,7 +5,8 @@ same rows for the same seed whatever the chunking). :func:`run_demo` writes the 
 the spec files of a claim-frequency model (poisson, exposure), a banded challenger and a
 claim-severity model (gamma on the average claim, claim counts as weights), fits each from
 its spec file, saves the model files, writes relativity tables and HTML reports validated on
-a hold-out year, and scores the book. Both models measure region from the same base level.
+a hold-out year, builds a banded pure-premium tariff with the cost of banding on the hold-out
+year, and scores the book. Both models measure region from the same base level.
 The scenario is invented; nothing here describes a real portfolio.
 """
 
@@ -133,6 +134,8 @@ class DemoResult:
     reports: list[str]
     tables: list[str]
     specs: list[str]
+    tariff: str = ""        # the tariff folder
+    cost: object = None     # the cost of banding on the hold-out (BandingCost)
 
 
 TRAIN = "policy_year <= 2023"   # the demo fits on three years and holds out the fourth
@@ -204,7 +207,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
              echo: Callable[[str], None] = lambda s: None) -> DemoResult:
     """Write the book and the spec files; fit frequency (and a banded challenger) and
     severity on 2021–2023 from their spec files; save the models; write relativity tables;
-    validate on 2024 into HTML reports; score the whole book."""
+    build the pure-premium tariff and measure its cost of banding on 2024; validate on 2024
+    into HTML reports; score the whole book."""
     from tallgam.data.sources import connect
     from tallgam.spec import load_spec
 
@@ -234,7 +238,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
         tables += fit.relativities().write(os.path.join(folder, "tables", name))
     echo(f"relativity tables written to {os.path.join(folder, 'tables')} "
          "(notes.txt in each folder explains them)")
-    reports = _reports(folder, freq, banded, sev, glob, progress, echo)
+    tariff_dir, cost = _tariff(folder, freq, sev, glob, progress, echo)
+    reports = _reports(folder, freq, banded, sev, glob, progress, echo, cost)
     scored = os.path.join(folder, "scored_frequency.parquet")
     echo(f"scoring the whole book with the frequency model into {scored}")
     freq.score(glob, scored, keep=["policy_id", "claim_count"], progress=progress)
@@ -243,10 +248,26 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
         "SELECT sum(claim_count), sum(prediction) FROM read_parquet(?)", [scored]).fetchall()[0]
     con.close()
     return DemoResult(folder, book, freq, sev, scored, float(actual), float(expected),
-                      reports, tables, specs)
+                      reports, tables, specs, tariff_dir, cost)
 
 
-def _reports(folder, freq, banded, sev, glob, progress, echo) -> list[str]:
+def _tariff(folder, freq, sev, glob, progress, echo):
+    """The pure-premium tariff of the demo book (automatic bands, ±2%), with the cost of
+    banding measured on the 2024 hold-out."""
+    import tallgam as tg
+
+    out = os.path.join(folder, "tariff")
+    echo("building a pure-premium tariff (frequency × severity, automatic bands within ±2%)")
+    tariff = tg.tariff(freq, sev, tolerance=0.02)
+    echo(tariff.summary())
+    cost = tariff.cost(glob, where=HOLDOUT, progress=progress)
+    echo(cost.summary())
+    tariff.write(out, cost=cost)
+    echo(f"tariff written to {out}")
+    return out, cost
+
+
+def _reports(folder, freq, banded, sev, glob, progress, echo, cost=None) -> list[str]:
     try:
         import matplotlib  # noqa: F401
     except ImportError:
@@ -258,7 +279,8 @@ def _reports(folder, freq, banded, sev, glob, progress, echo) -> list[str]:
     out = [
         write_report(freq, os.path.join(folder, "report_frequency.html"), data=glob,
                      where=HOLDOUT, against=banded,
-                     title="Claim frequency — demo motor book", progress=progress),
+                     title="Claim frequency — demo motor book", progress=progress,
+                     banding=cost),
         write_report(sev, os.path.join(folder, "report_severity.html"), data=glob,
                      where=f"claim_count > 0 AND {HOLDOUT}",
                      title="Claim severity — demo motor book", progress=progress),

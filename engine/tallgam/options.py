@@ -43,6 +43,9 @@ class Tuning:
         this many rows.
     tables_memory : str, default "1GB"
         DuckDB's working memory for hold-out tables (it spills to disk beyond).
+    memory_limit : int, optional
+        Bytes a fit may plan for its normal equations and dense stage; a model needing
+        more is refused before any data pass (None: 80% of the machine's memory).
     """
 
     eliminate_levels: int = 200
@@ -52,6 +55,7 @@ class Tuning:
     table_rows: int = 4096
     partition_min_rows: int = 250_000
     tables_memory: str = "1GB"
+    memory_limit: int | None = None
 
     def __post_init__(self):
         for name in ("eliminate_levels", "cell_limit", "exact_span", "table_rows",
@@ -59,6 +63,18 @@ class Tuning:
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
                 raise SpecError(f"tuning {name} must be a whole number ≥ 0, got {v!r}")
+        if self.memory_limit is not None:
+            positive_int("tuning memory_limit", self.memory_limit)
+
+    def memory_bytes(self) -> int:
+        """The memory a fit may plan for (``memory_limit``, else 80% of physical memory)."""
+        if self.memory_limit is not None:
+            return int(self.memory_limit)
+        try:
+            total = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES")
+        except (ValueError, OSError, AttributeError):  # not POSIX: assume a modest machine
+            total = 8 << 30
+        return int(0.8 * total)
 
 
 def positive_int(name: str, value, *, allow_none: bool = False) -> int | None:

@@ -19,6 +19,9 @@ Example::
     kind = "categorical"
     column = "fuel"
 
+A ``[bands]`` and a ``[tariff]`` table may follow, for ``tallgam tariff --bands SPEC``
+(:mod:`tallgam.outputs.bands`); fitting ignores them.
+
 Unknown keys and wrong types raise :class:`~tallgam.errors.SpecError` naming the key and
 suggesting the nearest valid one.
 """
@@ -44,6 +47,7 @@ MODEL_KEYS: dict[str, tuple] = {
     "offset": (str,), "weights": (str,), "where": (str,), "criterion": (str,),
     "missing": (str,), "max_iterations": (int,), "tolerance": _NUMBER,
 }
+TARIFF_KEYS: dict[str, tuple] = {"bands": (dict,), "tariff": (dict,)}  # read by `tallgam tariff`
 RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
     "binned": (bool, int), "scratch": (str, bool),
@@ -113,12 +117,12 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise SpecError(f"{label} is not valid TOML: {exc}") from None
-    allowed = set(MODEL_KEYS) | set(RUN_KEYS) | {"term"}
+    allowed = set(MODEL_KEYS) | set(RUN_KEYS) | set(TARIFF_KEYS) | {"term"}
     for key, value in raw.items():
         if key not in allowed:
             raise SpecError(f"{label}: unknown key {key!r}{nearest(key, allowed)}; valid keys "
                             f"are {', '.join(sorted(allowed))}")
-        types = MODEL_KEYS.get(key) or RUN_KEYS.get(key)
+        types = MODEL_KEYS.get(key) or RUN_KEYS.get(key) or TARIFF_KEYS.get(key)
         if types:
             _check_type(label, key, value, types)
     if "response" not in raw:

@@ -191,7 +191,32 @@ def check_profile(profile: DataProfile, source: Source, model) -> None:
             + "; ".join(bad) + ". Clean them, filter them out with a where condition, or "
             "set missing to \"drop\" (the key missing of the spec file or of Model) to "
             "leave such rows out.")
+    _check_magnitudes(profile, model)
     if profile.violations:
         lines = [f"{msg}: {n} row(s), e.g. {', '.join(f'{v:g}' for v in ex)}"
                  for n, ex, msg in profile.violations.values()]
         raise DataError("values outside what the model allows — " + "; ".join(lines))
+
+
+#: responses and multipliers beyond this magnitude would overflow sums of squares
+LARGEST_VALUE = 1e100
+
+
+def _check_magnitudes(profile: DataProfile, model) -> None:
+    """DataError when the response is so large (or so small, all non-zero) that sums of its
+    squares leave double precision; the model's columns are measured in internal units, so
+    their own scale does not matter."""
+    y = profile.role("response")
+    if y is None or y.min is None:
+        return
+    big = max(abs(y.min), abs(y.max))
+    if big > LARGEST_VALUE:
+        raise DataError(
+            f"the response {shorten(model.response)} reaches {big:.3g}: sums of squares of "
+            "such values overflow double precision. Rescale it in SQL (e.g. response = "
+            "\"amount / 1e6\") and scale predictions back")
+    if 0 < big < 1.0 / LARGEST_VALUE:
+        raise DataError(
+            f"the response {shorten(model.response)} is at most {big:.3g} in magnitude: "
+            "squares of such values underflow double precision. Rescale it in SQL (e.g. "
+            "response = \"rate * 1e6\")")

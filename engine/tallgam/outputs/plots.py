@@ -338,7 +338,7 @@ def lorenz_figure(lorenz, gini: float):
     return fig
 
 
-def actual_vs_expected_figure(table, column: str, *, ordered: bool,
+def actual_vs_expected_figure(table, column: str, *, ordered: bool = True,
                               exposure_name: str = "exposure"):
     """Actual over expected per band of a rating factor, with the exposure (or weight, or
     rows: ``exposure_name``) per band. ``ordered``: numeric bands, joined by a line; levels
@@ -356,10 +356,18 @@ def actual_vs_expected_figure(table, column: str, *, ordered: bool,
     fig, (ax, bar) = plt.subplots(2, 1, figsize=(7.0, 4.4), sharex=True,
                                   gridspec_kw={"height_ratios": [2.6, 1], "hspace": 0.08})
     ratio = np.array([np.nan if v is None else v for v in d["actual_over_expected"]], float)
-    ax.plot(pos, ratio, color=ACCENT, marker="o", markerfacecolor="white",
-            linewidth=1.5 if ordered else 0, linestyle="-" if ordered else "none")
+    joined = {"linewidth": 1.5 if ordered else 0, "linestyle": "-" if ordered else "none"}
+    ax.plot(pos, ratio, color=ACCENT, marker="o", markerfacecolor="white", label="smooth model",
+            **joined)
+    shown = list(ratio)
+    if "actual_over_tariff" in d:  # a tariff's bands: its premium beside the model's
+        banded = np.array([np.nan if v is None else v for v in d["actual_over_tariff"]], float)
+        ax.plot(pos, banded, color=INK, marker="s", markerfacecolor="white",
+                label="banded tariff", **{**joined, "linestyle": "--" if ordered else "none"})
+        ax.legend(frameon=False, fontsize=8)
+        shown += list(banded)
     ax.axhline(1.0, color=MUTED, linewidth=0.9)
-    ax.set_ylim(*_ratio_limits(list(ratio)))
+    ax.set_ylim(*_ratio_limits(shown))
     ax.set_ylabel("actual / expected")
     ax.set_title(f"Actual over expected by {column}", loc="left", fontsize=11, color=INK)
     _style(ax)
@@ -371,6 +379,58 @@ def actual_vs_expected_figure(table, column: str, *, ordered: bool,
                         ha="right" if len(labels) > 6 else "center", fontsize=8)
     _style(bar)
     fig.subplots_adjust(left=0.12, right=0.97, top=0.92, bottom=0.24)
+    return fig
+
+
+def banded_curve_figure(table, name: str):
+    """A factor's fitted relativity (line) and its tariff bands (steps), with the training
+    exposure; ``table`` has ``value``, ``fitted``, ``tariff`` and ``training_exposure``."""
+    plt = _plt()
+    d = table.to_pydict()
+    x = np.asarray(d["value"], dtype=float)
+    fig, (ax, bar) = plt.subplots(2, 1, figsize=(7.0, 4.4), sharex=True,
+                                  gridspec_kw={"height_ratios": [3.0, 1], "hspace": 0.08})
+    ax.plot(x, d["fitted"], color=MUTED, linewidth=1.6, label="fitted (smooth)")
+    ax.step(x, d["tariff"], where="post", color=INK, linewidth=2.0, label="tariff band")
+    ax.axhline(1.0, color=MUTED, linewidth=0.9)
+    ax.set_ylabel("relativity")
+    ax.set_title(f"{name}: fitted relativity and tariff bands", loc="left", fontsize=11,
+                 color=INK)
+    ax.legend(frameon=False, fontsize=8)
+    _style(ax)
+    width = np.min(np.diff(x)) * 0.8 if len(x) > 1 else 0.8
+    bar.bar(x, d["training_exposure"], width=width, color=MUTED, alpha=0.75, linewidth=0)
+    bar.set_ylabel("training\nexposure", fontsize=8, labelpad=2)
+    _thousands(bar.yaxis)
+    bar.set_xlabel(name)
+    _style(bar)
+    fig.subplots_adjust(left=0.12, right=0.97, top=0.92, bottom=0.14)
+    return fig
+
+
+def premium_ratio_figure(ratio_bands, threshold: float = 0.05):
+    """Share of policies by range of the ratio tariff premium / model premium, the ranges
+    within ± ``threshold`` drawn light."""
+    plt = _plt()
+    d = ratio_bands.to_pydict()
+    labels = []
+    for lo, hi in zip(d["ratio_from"], d["ratio_to"]):
+        labels.append(f"< {hi:g}" if not np.isfinite(lo) else
+                      f"≥ {lo:g}" if not np.isfinite(hi) else f"{lo:g}–{hi:g}")
+    inside = [np.isfinite(lo) and np.isfinite(hi) and lo >= 1 - threshold - 1e-12
+              and hi <= 1 + threshold + 1e-12 for lo, hi in zip(d["ratio_from"], d["ratio_to"])]
+    pos = np.arange(len(labels))
+    share = 100 * np.asarray(d["share_of_policies"], dtype=float)
+    fig, ax = plt.subplots(figsize=(7.0, 3.8))
+    ax.bar(pos, share, color=[BAND if i else ACCENT for i in inside], edgecolor=INK)
+    ax.set_xticks(pos)
+    ax.set_xticklabels(labels, fontsize=8)
+    ax.set_xlabel("tariff premium / model premium")
+    ax.set_ylabel("% of policies")
+    ax.set_title(f"How far the tariff moves each premium (dark: beyond ±{100 * threshold:g}%)",
+                 loc="left", fontsize=11, color=INK)
+    _style(ax)
+    fig.subplots_adjust(bottom=0.16)
     return fig
 
 

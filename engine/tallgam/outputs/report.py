@@ -14,7 +14,7 @@ from __future__ import annotations
 from tallgam.outputs.formatting import CAUTION, count, fixed, number, relativity
 from tallgam.outputs.summary import profile_text, summary_text
 
-__all__ = ["CAUTION", "html_report", "write_report"]
+__all__ = ["CAUTION", "banding_page", "banding_section", "html_report", "write_report"]
 
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0;
@@ -136,9 +136,11 @@ def _validation_tables(v) -> dict[str, str]:
     return out
 
 
-def html_report(fit, validation=None, *, title: str | None = None, check=None) -> str:
+def html_report(fit, validation=None, *, title: str | None = None, check=None,
+                banding=None) -> str:
     """One self-contained HTML page: summary, every term's figure and table, the data
-    profile, hold-out validation (if given) and the cautions. Images are embedded."""
+    profile, hold-out validation (if given), the cost of banding of a tariff built from
+    the model (``banding``, from ``Tariff.cost``) and the cautions. Images are embedded."""
     from tallgam.outputs import plots
 
     log_link = fit.model.link.multiplicative
@@ -153,7 +155,9 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
              f'{_esc(prov.get("tallgam_version", "?"))}</p>',
              f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
              '<nav><a href="#summary">Summary</a><a href="#terms">Rating factors</a>'
-             '<a href="#validation">Validation</a><a href="#data">Training data</a></nav>',
+             '<a href="#validation">Validation</a>'
+             + ('<a href="#tariff">Tariff</a>' if banding is not None else "")
+             + '<a href="#data">Training data</a></nav>',
              '<h2 id="summary">Summary</h2>',
              f"<pre>{_esc(summary_text(fit, caution=False))}</pre>"]
     if rel.base_rate is not None:
@@ -218,9 +222,15 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
     if check is not None:
         parts.append('<h3 id="check">The hold-out against the training data</h3>')
         parts.append(f"<pre>{_esc(check.summary())}</pre>")
+    if banding is not None:
+        parts.append(banding_section(banding))
     parts.append('<h2 id="data">Training data</h2>')
     parts.append(f"<pre>{_esc(profile_text(fit))}</pre>")
     parts.append(f'<div class="caution">{_esc(CAUTION)}</div>')
+    return _page(title, parts)
+
+
+def _page(title: str, parts: list[str]) -> str:
     body = "\n".join(parts)
     return (f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
             f'<meta name="viewport" content="width=device-width, initial-scale=1">'
@@ -229,10 +239,11 @@ def html_report(fit, validation=None, *, title: str | None = None, check=None) -
 
 
 def write_report(fit, path, *, data=None, where: str | None = None, against=None,
-                 title: str | None = None, progress=False) -> str:
+                 title: str | None = None, progress=False, banding=None) -> str:
     """Validate on ``data`` (if given; the rows meeting the SQL condition ``where``) and
     write the HTML report atomically; returns the path. The output path is checked first,
-    so a bad one fails before the validation pass."""
+    so a bad one fails before the validation pass. ``banding``: the cost of banding of a
+    tariff built from the model (a section)."""
     from tallgam.atomic import check_target, write_text
 
     check_target(path)
@@ -240,5 +251,53 @@ def write_report(fit, path, *, data=None, where: str | None = None, against=None
     if data is not None:
         validation = fit.validate(data, against=against, where=where, progress=progress)
         check = fit.check(data, where=where)
-    write_text(path, html_report(fit, validation, title=title, check=check))
+    write_text(path, html_report(fit, validation, title=title, check=check,
+                                 banding=banding))
     return str(path)
+
+
+def _arrow_table(table) -> str:
+    """Any Arrow table for people: its column names, numbers rounded (:func:`_number`)."""
+    d = table.to_pydict()
+    return _html_table([(c, d[c], _number) for c in table.column_names])
+
+
+def banding_section(cost) -> str:
+    """HTML of the cost of banding (:class:`~tallgam.outputs.banding_cost.BandingCost`):
+    the cost table, how far premiums move, and per banded factor its bands against the
+    fitted curve and actual over expected of tariff and model."""
+    from tallgam.outputs import plots
+
+    t = cost.threshold
+    parts = ['<h2 id="tariff">Tariff: the cost of banding</h2>',
+             f"<p>The banded tariff against the smooth model(s) ({_esc(', '.join(cost.models))})"
+             f" on {count(cost.rows)} hold-out rows. The premium of "
+             f"<strong>{100 * cost.moved:.2f}%</strong> of policies moves by more than "
+             f"{100 * t:g}% ({100 * cost.moved_up:.2f}% up, {100 * cost.moved_down:.2f}% down; "
+             f"{100 * cost.moved_exposure:.2f}% of exposure).</p>",
+             _arrow_table(cost.table()),
+             f'<p class="note">deviance: {_esc(cost.deviance_note)}</p>',
+             _img(plots.to_png(plots.premium_ratio_figure(cost.ratio_bands, t)),
+                  "ratio of tariff to model premium"),
+             '<div class="grid">' + _arrow_table(cost.ratio_bands)
+             + _arrow_table(cost.ratio_quantiles) + "</div>",
+             "<h3>Double lift: bands of the ratio tariff / model premium</h3>",
+             _arrow_table(cost.double_lift)]
+    for name, table in cost.by_band.items():
+        parts.append(f"<h3>{_esc(name)}</h3>")
+        curve = cost.curves.get(name)
+        if curve is not None:
+            parts.append(_img(plots.to_png(plots.banded_curve_figure(curve, name)),
+                              f"fitted relativity and tariff bands of {name}"))
+        parts.append(_img(plots.to_png(plots.actual_vs_expected_figure(table, name)),
+                          f"actual versus expected by band of {name}"))
+        parts.append(_arrow_table(table))
+    return "\n".join(parts)
+
+
+def banding_page(cost, *, title: str = "The cost of banding") -> str:
+    """A self-contained HTML page of the cost of banding, with the cautions."""
+    parts = [f"<h1>{_esc(title)}</h1>",
+             f'<div class="caution"><strong>Caution.</strong> {_esc(CAUTION)}</div>',
+             banding_section(cost), f'<div class="caution">{_esc(CAUTION)}</div>']
+    return _page(title, parts)

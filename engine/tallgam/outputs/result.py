@@ -73,9 +73,10 @@ class FitResult:
         edf["total"] = float(np.sum(sol.edf))
         smoothing: dict = {}
         # in terms order (an eliminated random effect's λ comes last in sol.lam)
+        user = cons.user_smoothing(sol.lam)  # internal units → the user's (see terms)
         for k in sorted(range(len(cons.penalty_owner)), key=lambda k: cons.penalty_owner[k]):
             label = design.bases[cons.penalty_owner[k]].label
-            smoothing.setdefault(label, []).append(float(sol.lam[k]))
+            smoothing.setdefault(label, []).append(user[k])
         smoothing = {k: (v[0] if len(v) == 1 else v) for k, v in smoothing.items()}
         sc = fs.state.scalars
         n = sc["rows"]

@@ -277,10 +277,10 @@ def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Valid
     rows, exposure, actual, expected = con.execute(
         "SELECT count(*), sum(exposure), sum(actual), sum(expected) FROM h").fetchall()[0]
     null_dev = _flat_rate_deviance(fit, con, actual / exposure)
-    gini_raw = _gini(con, "rate")
-    perfect = _gini(con, "actual / exposure")
+    gini_raw = ordered_gini(con, "rate")
+    perfect = ordered_gini(con, "actual / exposure")
     lorenz = _lorenz(con, "rate")
-    lift = _bands_by(con, "rate", ["expected"])
+    lift = bands_by(con, "rate", ["expected"])
     ave = {}
     for c, kind in _model_columns(fit).items():
         ave[c] = _actual_vs_expected(con, f'"f:{c}"', kind)
@@ -294,8 +294,9 @@ def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Valid
     if challenger is not None:
         con.execute("CREATE VIEW hb AS SELECT *, expected_b / exposure AS rate_b, "
                     "expected / expected_b AS ratio FROM h")
-        val.double_lift = _bands_by(con, "ratio", ["expected", "expected_b"], view="hb")
-        val.challenger_gini = _gini(con, "rate_b", view="hb") / perfect if perfect else np.nan
+        val.double_lift = bands_by(con, "ratio", ["expected", "expected_b"], view="hb")
+        val.challenger_gini = (ordered_gini(con, "rate_b", view="hb") / perfect if perfect
+                               else np.nan)
         val.challenger_deviance = sums["challenger_deviance"]
     return val
 
@@ -321,7 +322,9 @@ def _cumulative(order: str, view: str) -> str:
             f"row_number() OVER (ORDER BY key) AS k FROM g)")
 
 
-def _gini(con, order: str, view: str = "h") -> float:
+def ordered_gini(con, order: str, view: str = "h") -> float:
+    """Raw Gini of the ordered Lorenz curve of ``view`` (columns ``exposure``, ``actual``)
+    with policies sorted by the SQL ``order`` (see the module docstring)."""
     e_tot, a_tot = con.execute(f"SELECT sum(exposure), sum(actual) FROM {view}").fetchall()[0]
     if not a_tot or not e_tot:
         return float("nan")
@@ -342,7 +345,7 @@ def _lorenz(con, order: str, view: str = "h") -> pa.Table:
     return pa.concat_tables([start, table.cast(start.schema)])
 
 
-def _bands_by(con, order: str, expected: list[str], view: str = "h") -> pa.Table:
+def bands_by(con, order: str, expected: list[str], view: str = "h") -> pa.Table:
     """Ten bands of equal exposure by ``order``: exposure, actual and expected sums."""
     sums = ", ".join(f"sum({c}) AS {c}" for c in expected)
     rates = ", ".join(f"sum({c}) / sum(exposure) AS {c}_rate" for c in expected)

@@ -15,7 +15,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from tallgam.errors import FitError
+from tallgam.errors import FitError, OutOfMemoryError
 from tallgam.options import Tuning
 from tallgam.passes.design import Design
 from tallgam.passes.state import PassState
@@ -78,25 +78,38 @@ class Constraints:
             off += size
         self.n_free = off
         self.blocks: list[PenaltyBlock] = []
-        self.fixed: list[float | None] = []
+        self.fixed: list[float | None] = []  # given λ, in the internal units of penalties
         self.penalty_owner: list[int] = []  # basis index of every penalty
+        self.penalty_exponents: list[int] = []  # user-unit λ = 2**e × internal λ
         first = 0
         for j in kept_bases:
             b, mats = design.bases[j], penalties[j]
             if not mats:
                 continue
             self.blocks.append(PenaltyBlock(sl=self.free_slices[j], matrices=mats, first=first))
+            exps = b.penalty_exponents()
+            exps = exps + [0] * (len(mats) - len(exps))   # e.g. a removable term's extra one
             fixed = b.fixed_smoothing()
-            self.fixed.extend(fixed + [None] * (len(mats) - len(fixed)))
+            fixed = fixed + [None] * (len(mats) - len(fixed))
+            self.fixed.extend(None if v is None else float(np.ldexp(v, e))
+                              for v, e in zip(fixed, exps))
+            self.penalty_exponents.extend(exps)
             self.penalty_owner.extend([j] * len(mats))
             first += len(mats)
         if self.eliminated is not None:
             # its penalties() would be an L × L identity: only its fixed λ is asked for
             self.fixed.extend(design.bases[self.eliminated].fixed_smoothing())
+            self.penalty_exponents.append(0)
             self.penalty_owner.append(self.eliminated)
         from tallgam.solve.shapes import ShapeConstraints
 
         self.shapes = ShapeConstraints(self)
+
+    def user_smoothing(self, lam) -> list[float]:
+        """λ as users read them (see :meth:`tallgam.terms.base.Basis.penalty_exponents`),
+        from the internal ones; beyond double precision they show as 0 or inf."""
+        with np.errstate(over="ignore", under="ignore"):
+            return [float(np.ldexp(v, -e)) for v, e in zip(lam, self.penalty_exponents)]
 
     @property
     def eliminated_raw(self) -> slice | None:
@@ -237,3 +250,49 @@ def _eliminated_basis(design: Design, eliminate_from: int | None) -> int | None:
     sizes = {j: b.n_raw for j, b in enumerate(design.bases)
              if b.eliminable and b.n_raw >= eliminate_from}
     return max(sizes, key=sizes.get) if sizes else None
+
+
+def planned_bytes(design: Design, criterion: str, tuning: Tuning, threads: int) -> dict:
+    """Bytes a fit of ``design`` will hold, by part: the per-thread accumulators of a data
+    pass (dense block, level-by-dense cross products, level pairs) and the dense stage
+    (about eight p_k × p_k arrays for the kept coefficients p_k: the working matrix, its
+    factor and inverse, the constraint, eigenvectors and the covariance)."""
+    pd = design.pd
+    sizes = design.level_sizes
+    L = sum(sizes)
+    pairs = sum(a * b for i, a in enumerate(sizes) for b in sizes[i + 1:])
+    eliminated = (_eliminated_basis(design, tuning.eliminate_levels)
+                  if criterion in ("reml", "fixed") else None)
+    kept = design.p - (design.bases[eliminated].n_raw if eliminated is not None else 0)
+    elim_bytes = 0
+    if eliminated is not None:   # its cross products with the kept columns, a few copies
+        elim_bytes = 4 * 8 * design.bases[eliminated].n_raw * kept
+    return {"passes": 8 * threads * (pd * pd + L * pd + pairs + 4 * (pd + L)),
+            "dense stage": 8 * 8 * kept * kept + elim_bytes}
+
+
+def check_memory(design: Design, criterion: str, tuning: Tuning, threads: int) -> None:
+    """OutOfMemoryError, before any data pass, when the model's normal equations and dense
+    stage would not fit in ``tuning.memory_bytes()``; the message names the largest terms
+    and what to do."""
+    need = planned_bytes(design, criterion, tuning, threads)
+    limit = tuning.memory_bytes()
+    total = sum(need.values())
+    if total <= limit:
+        return
+    big = sorted(design.bases[1:], key=lambda b: -b.n_raw)[:3]
+    named = ", ".join(f"{b.label} ({b.n_raw:,} coefficients)" for b in big)
+    advice = []
+    if any(b.group == "levels" and not b.eliminable for b in big):
+        advice.append("give a level column with many levels as tg.random_effect (its block is "
+                      "eliminated: memory grows with its levels, not their square) or group "
+                      "its levels in SQL")
+    if any(b.group == "dense" for b in big):
+        advice.append("lower the size of large smooth terms")
+    advice.append("use fewer threads" if need["passes"] > need["dense stage"] else
+                  "or raise tuning memory_limit on a machine with more memory")
+    parts = ", ".join(f"{k} {v / 2**30:,.1f} GiB" for k, v in need.items())
+    raise OutOfMemoryError(
+        f"the model has {design.p:,} coefficients and would need about "
+        f"{total / 2**30:,.1f} GiB ({parts}), more than the {limit / 2**30:,.1f} GiB it may "
+        f"use; the largest terms: {named}. " + "; ".join(advice) + ".")

@@ -37,7 +37,7 @@ from tallgam.passes.design import Design
 from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
 from tallgam.passes.state import PassState
 from tallgam.progress import Event, make_callback
-from tallgam.solve.constraints import Constraints
+from tallgam.solve.constraints import Constraints, check_memory
 from tallgam.solve.smoothing import RHO_BOUND, Solution, select, solve
 from tallgam.terms.base import Basis, InterceptBasis
 
@@ -168,6 +168,8 @@ def prepare(model, source: Source, options: RunOptions, callback) -> Setup:
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
+    check_memory(design, model.criterion, options.tuning,
+                 options.threads or numba.get_num_threads())
     binned = None
     if options.bin_points is not None:
         binned = BinnedDesign(design, profile, options.bin_points, options.tuning)
@@ -320,7 +322,8 @@ class _Run:
                 comparable = not nuisance_moved
                 nuisance_moved = self._update_nuisance(state)
                 pdev = dev + _penalty_value(constraints, lam, beta)
-                record = PassRecord(self.passes, "step", dev, pdev, list(lam),
+                record = PassRecord(self.passes, "step", dev, pdev,
+                                    constraints.user_smoothing(lam),
                                     time.perf_counter() - t_pass, rows,
                                     int(state.scalars["invalid_rows"]))
                 invalid = state.scalars["invalid_rows"] > 0
@@ -374,7 +377,7 @@ class _Run:
             self.scale_est = _scale_estimate(state, sol, scale_known, exact)
             if exact:
                 history[-1].kind = "exact"
-                history[-1].smoothing = list(lam)
+                history[-1].smoothing = constraints.user_smoothing(lam)
                 converged = True
                 break
         if exact:

@@ -29,7 +29,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from tallgam.data.profile import DataProfile, tidy
-from tallgam.errors import DataError, ModelFileError, SpecError, nearest
+from tallgam.errors import DataError, ModelFileError, SpecError, nearest, shorten
 from tallgam.terms import sqltext
 
 GRID_POINTS = 101  # input values at which a numeric term is tabulated and drawn
@@ -205,8 +205,17 @@ class Basis:
         return len(self.penalties())
 
     def fixed_smoothing(self) -> list[float | None]:
-        """Per penalty a given smoothing parameter, or None for the criterion to choose."""
+        """Per penalty a given smoothing parameter (in the units of :meth:`penalties` as
+        the user reads them, see :meth:`penalty_exponents`), or None for the criterion to
+        choose."""
         return [getattr(self.spec, "smoothing", None)] * self.n_penalties
+
+    def penalty_exponents(self) -> list[int]:
+        """Per penalty e with: the penalty in the units users read (∫f''(x)²dx on the
+        column's own scale) = 2**e × the matrix :meth:`penalties` returns. Kinds that work
+        on columns measured in an internal unit (see :func:`tallgam.terms.bsplines.
+        unit_exponent`) say so here; smoothing parameters are converted with it."""
+        return [0] * self.n_penalties
 
     def constraint(self, colsum: np.ndarray) -> np.ndarray:
         """Z (n_raw × n_free) with β = Zγ, from Σ wᵢ xᵢ (the weighted column sums)."""
@@ -394,9 +403,19 @@ register(InterceptSpec, InterceptBasis)
 # helpers for kinds
 
 
+MAX_SIZE = 2000  # basis functions of one smooth term (margin): beyond, cost without gain
+
+
 def check_size(where: str, size) -> None:
-    if isinstance(size, bool) or not float(size).is_integer() or int(size) < 4:
-        raise SpecError(f"{where}: size must be an integer ≥ 4 (cubic splines), got {size!r}")
+    if (isinstance(size, bool) or not isinstance(size, (int, float, np.integer, np.floating))
+            or not float(size).is_integer() or int(size) < 4):
+        raise SpecError(f"{where}: size must be an integer ≥ 4 (cubic splines), got "
+                        f"{shorten(size)}")
+    if int(size) > MAX_SIZE:
+        raise SpecError(f"{where}: size {int(size):,} is more than the {MAX_SIZE:,} basis "
+                        "functions a smooth term takes (its normal equations grow with the "
+                        "square of the size and its solve with the cube, with nothing gained in "
+                        "fit: the penalty sets the smoothness). Use a size of 5 to 50.")
 
 
 def check_smoothing(where: str, smoothing) -> None:

@@ -161,6 +161,16 @@ def curvature_penalty(knots: np.ndarray, lo: float | None = None,
     return 0.5 * (s + s.T)
 
 
+def unit_exponent(span: float) -> int:
+    """e with 2**e the power of two nearest ``span``: the unit a column is measured in
+    inside the engine, so penalties and design values stay within floating point whatever
+    the column's own units (scaling by a power of two is exact)."""
+    span = abs(float(span))
+    if not (np.isfinite(span) and span > 0):
+        return 0
+    return int(np.round(np.log2(span)))
+
+
 def difference_penalty(size: int, order: int = 2) -> np.ndarray:
     """P-spline penalty DᵀD with D the ``order``-th difference matrix (Eilers & Marx 1996)."""
     d = np.diff(np.eye(size), n=order, axis=0)

@@ -120,8 +120,18 @@ class CyclicBasis(Basis):
         bs.encode_rows(self.knots, cols[self.spec.column], col0, idx, val, period=self.period,
                        wrap=self.n_raw)
 
+    @property
+    def x_exp(self) -> int:
+        """The column is measured in 2**x_exp inside the engine (see bsplines.unit_exponent)."""
+        return bs.unit_exponent(self.period)
+
+    def penalty_exponents(self):
+        return [-3 * self.x_exp]
+
     def penalties(self):
-        ext = bs.curvature_penalty(self.knots, self.origin, self.origin + self.period)
+        e = self.x_exp
+        ext = bs.curvature_penalty(np.ldexp(self.knots, -e), np.ldexp(self.origin, -e),
+                                   np.ldexp(self.origin + self.period, -e))
         fold = bs.periodic_fold(self.n_raw)
         s = fold.T @ ext @ fold
         return [0.5 * (s + s.T)]

@@ -23,10 +23,16 @@ class LinearSpec(TermSpec):
 
     def build(self, profile: DataProfile) -> LinearBasis:
         fp = profile.numeric(self.column)
-        if not fp.sd or fp.sd <= 0:
+        if fp.min is None or not fp.max > fp.min:
             raise DataError(f"linear({self.column!r}): the column is constant "
                             f"(every value is {fp.min:g}); drop the term")
-        return LinearBasis(self, float(fp.mean), float(fp.sd))
+        scale = fp.sd
+        span = fp.max - fp.min
+        if not (scale is not None and np.isfinite(scale) and scale > 1e-12 * span):
+            scale = span  # the standard deviation over- or underflowed: the range serves
+        centre = fp.mean if fp.mean is not None and np.isfinite(fp.mean) else \
+            0.5 * fp.min + 0.5 * fp.max
+        return LinearBasis(self, float(centre), float(scale))
 
 
 def linear(column: str, *, title: str | None = None) -> LinearSpec:

@@ -116,7 +116,11 @@ class SplineSpec(TermSpec):
                     f"{self.label}: the multiplier {self.multiplier!r} is {fm.min:g} on every "
                     "row, so the uncentred curve would repeat the intercept; it is centred like "
                     "an ordinary spline"), stacklevel=2)
-        return SplineBasis(self, knots, levels, centred=centred)
+        z_exp = 0
+        if self.multiplier:
+            fm = profile.numeric(self.multiplier)
+            z_exp = bs.unit_exponent(max(abs(fm.min or 0.0), abs(fm.max or 0.0)))
+        return SplineBasis(self, knots, levels, centred=centred, z_exp=z_exp)
 
 
 def spline(column: str, size: int = 10, *, knots: str | Sequence[float] | None = None,
@@ -213,9 +217,12 @@ class SplineBasis(Basis):
     width = bs.ORDER
 
     def __init__(self, spec: SplineSpec, knots: np.ndarray, per_levels: list[str] | None = None,
-                 centred: bool | None = None):
+                 centred: bool | None = None, z_exp: int = 0):
         super().__init__(spec)
         self.knots = np.asarray(knots, dtype=np.float64)
+        # internal units (powers of two): x measured in 2**x_exp, the multiplier in 2**z_exp
+        self.x_exp = bs.unit_exponent(self.knots[-1] - self.knots[0])
+        self.z_exp = int(z_exp)
         self.per_levels = list(per_levels) if per_levels is not None else None
         # a multiplier's curve f(x)·z is not centred, unless z is constant in the data
         self.centred = not spec.multiplier if centred is None else bool(centred)
@@ -250,13 +257,14 @@ class SplineBasis(Basis):
         codes = self.input_codes(cols, spec.per) if self.per_levels else None
         bs.encode_rows(self.knots, cols[spec.column], col0, idx, val, codes=codes,
                        stride=self.size,
-                       multiplier=cols[spec.multiplier] if spec.multiplier else None)
+                       multiplier=np.ldexp(cols[spec.multiplier], -self.z_exp)
+                       if spec.multiplier else None)
 
     def penalties(self):
         if self.spec.penalty == "difference":
             s = bs.difference_penalty(self.size)
         else:
-            s = bs.curvature_penalty(self.knots)
+            s = bs.curvature_penalty(np.ldexp(self.knots, -self.x_exp))
         if not self.per_levels:
             return [s]
         out = []
@@ -271,6 +279,10 @@ class SplineBasis(Basis):
     def n_penalties(self) -> int:
         return self.n_curves
 
+    def penalty_exponents(self):
+        e = -2 * self.z_exp - (0 if self.spec.penalty == "difference" else 3 * self.x_exp)
+        return [e] * self.n_curves
+
     def constraint(self, colsum):
         if not self.centred:  # f(x)·z is identifiable without centring
             return np.eye(self.n_raw)
@@ -283,7 +295,7 @@ class SplineBasis(Basis):
             return None
         order = 1 if shape in ("increasing", "decreasing") else 2
         sign = 1.0 if shape in ("increasing", "convex") else -1.0
-        d = derivative_rows(self.knots, order)
+        d = derivative_rows(np.ldexp(self.knots, -self.x_exp), order)
         scale = np.max(np.abs(d), axis=1, keepdims=True)
         return sign * d / np.where(scale > 0, scale, 1.0)
 
@@ -322,7 +334,8 @@ class SplineBasis(Basis):
         else:
             out = sqltext.piecewise(x, self.knots, coef, lo, hi)
         if spec.multiplier:
-            out = f"({out} * {sqltext.column(spec.multiplier)})"
+            z = sqltext.column(spec.multiplier)
+            out = f"({out} * ({z} * {sqltext.num(np.ldexp(1.0, -self.z_exp))}))"
         return out
 
     def to_dict(self):
@@ -331,11 +344,13 @@ class SplineBasis(Basis):
             out["levels"] = self.per_levels
         if self.spec.multiplier:
             out["centred"] = self.centred
+            out["multiplier_unit_exponent"] = self.z_exp
         return out
 
     @classmethod
     def from_dict(cls, spec, d):
-        return cls(spec, np.asarray(d["knots"]), d.get("levels"), d.get("centred"))
+        return cls(spec, np.asarray(d["knots"]), d.get("levels"), d.get("centred"),
+                   int(d.get("multiplier_unit_exponent", 0)))
 
 
 register(SplineSpec, SplineBasis)

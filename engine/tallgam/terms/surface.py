@@ -145,7 +145,7 @@ class SurfaceBasis(Basis):
         out = []
         for m, knots in enumerate(self.margins):
             mats = [np.eye(s) for s in sizes]
-            mats[m] = bs.curvature_penalty(knots)
+            mats[m] = bs.curvature_penalty(np.ldexp(knots, -self.margin_exponents[m]))
             full = mats[0]
             for nxt in mats[1:]:
                 full = np.kron(full, nxt)
@@ -155,6 +155,14 @@ class SurfaceBasis(Basis):
     @property
     def n_penalties(self) -> int:
         return len(self.margins)
+
+    @property
+    def margin_exponents(self) -> list[int]:
+        """Each margin measured in 2**e inside the engine (see bsplines.unit_exponent)."""
+        return [bs.unit_exponent(k[-1] - k[0]) for k in self.margins]
+
+    def penalty_exponents(self):
+        return [-3 * e for e in self.margin_exponents]
 
     def fixed_smoothing(self):
         sm = self.spec.smoothing

@@ -71,7 +71,8 @@ def test_constrained_fit_equals_an_independent_quadratic_programme():
     t = basis.knots
     k = len(t) - 4
     X = BSpline.design_matrix(df["x"].to_numpy(), t, 3).toarray()
-    vals, vecs = np.linalg.eigh(basis.penalties()[0])
+    # the penalty ∫f''(x)² dx in the column's own units (see Basis.penalty_exponents)
+    vals, vecs = np.linalg.eigh(np.ldexp(basis.penalties()[0], basis.penalty_exponents()[0]))
     root = vecs * np.sqrt(np.maximum(vals, 0.0))          # S = root·rootᵀ
     T = np.tril(np.ones((k, k)))                           # β = T θ
     A = np.vstack([X @ T, np.sqrt(lam) * root.T @ T])
