@@ -278,11 +278,9 @@ def tidy(values, digits: int = TIDY_DIGITS) -> np.ndarray:
     """Values rounded to ``digits`` significant digits: removes the float noise of sums and
     grid arithmetic (0.1 + 0.2) and leaves any value written with fewer digits unchanged."""
     x = np.asarray(values, dtype=np.float64)
-    out = x.copy()
-    ok = np.isfinite(x) & (x != 0)
-    scale = 10.0 ** (digits - 1 - np.floor(np.log10(np.abs(x[ok]))))
-    out[ok] = np.round(x[ok] * scale) / scale
-    return out
+    # decimal rounding through the shortest text: exact at every magnitude (1e-300 too)
+    return np.array([float(f"{v:.{digits}g}") for v in x.ravel()],
+                    dtype=np.float64).reshape(x.shape)
 
 
 def geometric_grid(fp: NumericProfile) -> bool:
