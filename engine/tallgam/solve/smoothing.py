@@ -685,8 +685,11 @@ def _newton(crit: _Criterion, rho: np.ndarray, tol: float, max_iter: int,
             stopped = "iterations"
             break
         it += 1
-        hess = crit.last_hessian if crit.last_hessian is not None else _fd_hessian(crit, rho)
-        step = _newton_step(hess * unit, grad * unit, rho)
+        exact = crit.last_hessian is not None
+        hess = crit.last_hessian if exact else _fd_hessian(crit, rho)
+        # REML's Hessian is analytic: its small eigenvalues are real (λ's far out on a
+        # flat criterion), and a high floor there would throttle Newton to a crawl
+        step = _newton_step(hess * unit, grad * unit, rho, 1e-10 if exact else 1e-7)
         if step is None:
             stopped = "bound"
             break
@@ -922,7 +925,7 @@ def _fd_hessian(crit: _Criterion, rho: np.ndarray, h: float = 1e-4):
     return 0.5 * (hess + hess.T)
 
 
-def _newton_step(hess, grad, rho, max_step: float = 5.0):
+def _newton_step(hess, grad, rho, floor: float = 1e-7, max_step: float = 5.0):
     """Newton step on the eigen-modified (positive definite) Hessian, with directions
     pinned at a bound removed; None when nothing can move."""
     movable = ~(((rho <= -RHO_BOUND + 1e-9) & (grad > 0)) | ((rho >= RHO_BOUND - 1e-9)
@@ -931,7 +934,7 @@ def _newton_step(hess, grad, rho, max_step: float = 5.0):
         return None
     hm = hess[np.ix_(movable, movable)]
     vals, vecs = np.linalg.eigh(hm)
-    floor = max(np.max(np.abs(vals)) * 1e-7, 1e-8)
+    floor = max(np.max(np.abs(vals)) * floor, 1e-14)
     vals = np.maximum(np.abs(vals), floor)
     step = np.zeros_like(rho)
     step[movable] = -(vecs / vals) @ (vecs.T @ grad[movable])
