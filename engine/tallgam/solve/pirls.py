@@ -36,7 +36,13 @@ from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
 from tallgam.passes.state import PassState
 from tallgam.progress import Event, make_callback
 from tallgam.solve.constraints import Constraints
-from tallgam.solve.smoothing import RHO_BOUND, Solution, select, solve
+from tallgam.solve.smoothing import (
+    RHO_BOUND,
+    Solution,
+    select,
+    smoothing_uncertainty,
+    solve,
+)
 from tallgam.terms import Basis, InterceptBasis
 
 
@@ -450,11 +456,14 @@ class _Run:
             out["smoothing_search"] = {
                 "penalties": [names[k] for k, f in enumerate(constraints.fixed) if f is None],
                 "steps": self.searches}
-        problem = constraints.problem(state, beta, None)
+        problem = constraints.problem(state, beta, 1.0 if self.fam.scale_known else None)
+        uncertainty = (smoothing_uncertainty(problem, solution, constraints.fixed)
+                       if self.model.criterion == "reml" else None)
         penalized = [j in constraints.penalty_owner for j in range(len(bases))]
         out["term_tests"] = term_tests([b.label for b in bases], constraints.free_slices,
                                        penalized, solution, problem.A, scale,
-                                       self.fam.scale_known, rows, constraints.eliminated)
+                                       self.fam.scale_known, rows, constraints.eliminated,
+                                       uncertainty)
         return out
     # ---- end of smoothing-search history and term tests ----
 

@@ -636,6 +636,42 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
     return sol
 
 
+def smoothing_uncertainty(problem: WorkingProblem, sol: Solution,
+                          fixed: list[float | None]) -> np.ndarray | None:
+    """J·V_ρ·Jᵀ (p_k × p_k, kept free coordinates): the first-order covariance that the
+    uncertainty of REML-chosen log λ adds to γ̂ (Kass & Steffey 1989; Wood, Pya & Säfken
+    2016, JASA 111:1548–1563, §3.1). V_ρ is the inverse of the REML Hessian in the free ρ
+    at ``sol.lam`` (directions with curvature below 1e-6 of the largest are left out: a λ
+    at its bound or not determined, where γ̂ no longer moves with it), and
+    J = ∂γ̂/∂ρ with columns −λ_k H⁻¹S_kγ̂ (for an eliminated block, S_e = I on its
+    coefficients, which enter the kept rows through H⁻¹_ke = −M⁻¹Gᵀ). ``problem`` must
+    carry the scale the selection used (known φ, or None). None when no λ is free."""
+    free = np.array([f is None for f in fixed], dtype=bool)
+    if not free.any():
+        return None
+    crit = _Criterion(problem, "reml", np.asarray(sol.lam, dtype=np.float64), free, 1.0)
+    try:
+        _, _, at = crit(np.zeros(int(free.sum())))
+    except np.linalg.LinAlgError:
+        return None
+    vals, vecs = np.linalg.eigh(crit.last_hessian)
+    keep = vals > 1e-6 * max(float(vals.max(initial=0.0)), 0.0)
+    if not keep.any():
+        return None
+    V_rho = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T
+    k = problem.A.shape[0]
+    columns = []
+    for j, (sl, m) in enumerate(problem.penalty_list()):
+        sg = np.zeros(k)
+        sg[sl] = m @ at.gamma[sl]
+        columns.append(-at.lam[j] * (at.H_inv @ sg))
+    if problem.eliminated is not None:
+        g_e = at.gamma[k:]
+        columns.append(at.lam[-1] * (at.H_inv @ (at.eliminated.G.T @ g_e)))
+    J = np.column_stack(columns)[:, free]
+    return J @ V_rho @ J.T
+
+
 SWEEP_STEP = 1.0   # spacing of the sweep and of the neighbour check, in log λ (a factor e)
 AXIS_POINTS = 30   # most points along one log λ (a wider range gets a wider spacing)
 GRID_POINTS = {2: 13, 3: 7}  # points per axis of the full grid for two or three free λ

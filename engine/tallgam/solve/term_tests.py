@@ -47,7 +47,8 @@ CHI2_FROM = 1e5     # residual df beyond which the F form's χ² limit is used (
 
 def term_tests(labels: list[str], free_slices: list[slice], penalized: list[bool],
                sol: Solution, A: np.ndarray, scale: float, scale_known: bool,
-               rows: float, eliminated: int | None = None) -> list[dict]:
+               rows: float, eliminated: int | None = None,
+               uncertainty: np.ndarray | None = None) -> list[dict]:
     """One dict per term but the first (the intercept): ``term``, ``test``,
     ``statistic``, ``df`` (reference degrees of freedom), ``residual_df`` (the F form's
     denominator; None with a known scale), ``reference`` (``"chi2"`` or ``"F"``),
@@ -55,7 +56,9 @@ def term_tests(labels: list[str], free_slices: list[slice], penalized: list[bool
 
     ``sol`` is the final solution (γ̂, the kept block of H⁻¹, EDF per free coefficient),
     ``A`` (p_k × p_k) the kept block of the working cross-product in free coordinates,
-    ``eliminated`` the index of a term eliminated in the dense stage."""
+    ``eliminated`` the index of a term eliminated in the dense stage, ``uncertainty``
+    (p_k × p_k) the covariance added by the uncertainty of the chosen smoothing parameters
+    (:func:`tallgam.solve.smoothing.smoothing_uncertainty`), used for penalized terms."""
     tau = float(np.sum(sol.edf))
     residual_df = None if scale_known else max(float(rows) - tau, 1.0)
     reference = "chi2" if scale_known else "F"
@@ -75,8 +78,11 @@ def term_tests(labels: list[str], free_slices: list[slice], penalized: list[bool
                        note="no free coefficients")
         elif penalized[j]:
             rank = 2.0 * edf - float(np.sum(ff[sl]))
-            stat, df, weights = _smooth_wald(sol.gamma[sl], scale * sol.H_inv[sl, sl],
-                                             A[sl, sl], rank)
+            V = scale * sol.H_inv[sl, sl]
+            if uncertainty is not None:
+                V = V + uncertainty[sl, sl]
+                row["note"] = "covariance includes the smoothing-parameter uncertainty"
+            stat, df, weights = _smooth_wald(sol.gamma[sl], V, A[sl, sl], rank)
             row.update(test="wald_truncated", statistic=stat, df=df,
                        p_value=_p_value(stat, weights, residual_df))
         else:
