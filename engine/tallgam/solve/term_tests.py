@@ -13,22 +13,29 @@ end of the fit from γ̂, H⁻¹ = (A + S_λ)⁻¹, A = ZᵀXᵀWXZ and the scal
   of the term's block of the weighted cross-product A_jj = R_jᵀR_j, the statistic is
   T = f̂ᵀV_f^{r−}f̂ = (R_jγ̂_j)ᵀ(R_jV_jR_jᵀ)^{r−}(R_jγ̂_j): the covariance inverted only on
   its r leading eigen-directions, because the penalty shrinks the rest to noise and a full
-  inverse would make the test far too eager. The rank is the term's reference degrees of
-  freedom τ₁ = tr(2F − F²)_jj, F = H⁻¹A (the alternative EDF; SAS/STAT 14.1 GAMPL,
-  "Tests for Smoothing Components" and "Degrees of Freedom", following Wood 2012/2013),
-  at least 1. A fractional r = k + ν is handled as in Wood (2013, §3; from memory): the
-  first k − 1 eigen-directions enter fully and the k-th and (k+1)-th through the 2 × 2
-  block D^{−1/2}BD^{−1/2}, B = [[1, ρ], [ρ, ν]], ρ = √(ν(1−ν)/2), so that T moves
-  continuously with r and, under the null, is Σ_{i<k} χ²₁ + b₊χ²₁ + b₋χ²₁ with
-  b± = ((1 + ν) ± √(1 − ν²))/2 the eigenvalues of B (mean r and variance 2r, as χ²_r).
-  Reference: that weighted sum of χ²₁ (known scale), or its ratio to χ²_{n−τ}/(n − τ)
-  (estimated scale; the F form).
+  inverse would make the test far too eager. The rank r — the reported reference degrees
+  of freedom ``df`` — is τ₁ = tr(2F − F²)_jj, F = H⁻¹A, the alternative EDF of the term
+  (Wood 2013; from memory), at least 1. A fractional r = k + ν is handled as in Wood
+  (2013, §3; from memory): the first k − 1 eigen-directions enter fully and the k-th and
+  (k+1)-th through the 2 × 2 block D^{−1/2}BD^{−1/2}, B = [[1, ρ], [ρ, ν]],
+  ρ = √(ν(1−ν)/2), so that T moves continuously with r and, under the null, is
+  Σ_{i<k} χ²₁ + b₊χ²₁ + b₋χ²₁ with b± = ((1 + ν) ± √(1 − ν²))/2 the eigenvalues of B
+  (mean r and variance 2r, as χ²_r). Reference: that weighted sum of χ²₁ (known scale), or
+  its ratio to χ²_{n−τ}/(n − τ) (estimated scale; the F form).
   The metric R_j comes from the working weights (A_jj = Z_jᵀX_jᵀWX_jZ_j), which for unit
   weights is the paper's X_jᵀX_j; the statistic does not depend on which square root.
+  With REML, V_j is the Bayesian covariance φ(H⁻¹)_jj plus the part the uncertainty of the
+  chosen log λ adds (:func:`tallgam.solve.smoothing.smoothing_uncertainty`; Wood, Pya &
+  Säfken 2016): without it p-values under the null are too small, because λ is chosen from
+  the same data (measured: Kolmogorov–Smirnov distance 0.1 from uniform over a few hundred
+  simulated null fits, against 0.03–0.05 with it).
 
-Tail probabilities of weighted sums of χ² variables come from Imhof's (1961, Biometrika
-48:419–426) inversion formula, and, below 1e-5 where its quadrature error would dominate,
-from the saddlepoint approximation of Kuonen (1999, Biometrika 86:929–935).
+Tail probabilities: equal weights from scipy's χ² and F distributions; a pair of weights
+with a known scale by integrating the closed-form density of aX₁ + bX₂ (:func:`pair_tail`);
+the F form of a pair by Imhof's (1961, Biometrika 48:419–426) inversion formula, and below
+1e-5, where its quadrature error would dominate, by the saddlepoint approximation of Kuonen
+(1999, Biometrika 86:929–935); with more than 1e5 residual degrees of freedom the F form's
+χ² limit.
 
 A random effect eliminated in the dense stage (its L × L covariance is never formed) is
 reported without a test.
