@@ -11,15 +11,25 @@ Criteria (all minimised):
 * REML (Patterson & Thompson 1971; Wood 2011, JRSS-B 73(1)), scale φ profiled out
   when unknown: (n−M₀)/2·log D_p + ½log|H| − ½log|S_λ|₊; with φ known:
   D_p/(2φ) + ½log|H| − ½log|S_λ|₊ (constants added back in the reported value).
-* GCV (Craven & Wahba 1979): n·D / (n − γτ)².
+* GCV (Craven & Wahba 1979): n·D / (n − γτ)² (infinite below one residual degree of
+  freedom, where a fit with a coefficient per data point interpolates).
 * UBRE / Mallows' Cp (known scale): D/n − φ + 2γτφ/n.
 
-ρ is found by Newton's method with analytic gradients (derivatives from the envelope
-theorem for D_p, and ∂log|H|/∂ρ_k = λ_k tr(H⁻¹S_k)) and a Hessian from central
-differences of the gradient, on an eigen-modified Hessian with step control, so the
-optimum is found to near machine precision and is reproducible. log|S_λ|₊ is taken block
-by block (one block per term), which keeps it stable when the λ of different terms differ
-by many orders of magnitude.
+The search (:func:`select`) is global first, local second. On the first PIRLS step a
+coarse sweep of each log λ (a full grid for two or three free λ, coordinate sweeps for
+more; :class:`_Search`) finds the criterion's basins — GCV can have several (Wahba 1990,
+ch. 4) — and Newton starts from the best local minima of the sweep; later steps start from
+the previous step's λ. Every optimum is checked against its neighbours one sweep step away
+along each log λ, and Newton restarts from a neighbour that beats it. Sweep points are
+valued by a light solve (Cholesky, no H⁻¹). The history (points tried, Newton runs, which
+start won) is kept on the :class:`Solution`. Newton uses analytic gradients (derivatives
+from the envelope theorem for D_p, and ∂log|H|/∂ρ_k = λ_k tr(H⁻¹S_k)), the exact REML
+Hessian or central differences of the gradient (GCV, UBRE), on an eigen-modified Hessian
+with step control, and stops when the unit-free gradient is below the requested tolerance
+(or where the criterion's rounding hides any further gain), so the optimum is found to near
+machine precision and is reproducible. log|S_λ|₊ is taken block by block (one block per
+term), and overlapping penalties of one term by a split on the dominant penalty's range,
+which keeps it stable when the λ differ by many orders of magnitude.
 
 A ridge-penalized block with many levels (a random effect: every row hits one of its
 levels, so its block of A is diagonal) can be *eliminated*: with h = d + λ_e its diagonal,
@@ -615,6 +625,12 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
         search.runs.append(run)
         if best is None or run.value < best.value:
             best = run
+    if best.sol is None and not sweep:  # the given start is singular: search afresh
+        for label, rho in search.sweep(_sweep_axes(problem, base, free)):
+            run = _newton(crit, rho, tol, max_iter, label)
+            search.runs.append(run)
+            if run.value < best.value:
+                best = run
     for _ in range(RESTARTS):
         better = search.better_neighbour(best)
         if better is None:
