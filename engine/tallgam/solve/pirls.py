@@ -476,7 +476,7 @@ class _Run:
         penalized = [j in constraints.penalty_owner for j in range(len(bases))]
         out["term_tests"] = term_tests([b.label for b in bases], constraints.free_slices,
                                        penalized, solution, problem.A, scale,
-                                       self.fam.scale_known, rows, constraints.eliminated,
+                                       self.fam.scale_known, rows, constraints.eliminated_term,
                                        uncertainty)
         return out
     # ---- end of smoothing-search history and term tests ----

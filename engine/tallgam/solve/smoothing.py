@@ -205,7 +205,7 @@ class WorkingProblem:
 
     A (p × p) = ZᵀXᵀWXZ, u (p,) = ZᵀXᵀW r, e = rᵀWr, all at the anchor γ_a (p,);
     ``blocks`` lists every term's penalties; ``n`` is the number of rows. With
-    ``eliminated``, A, u, anchor and blocks cover the kept coefficients only (p = p_k).
+    ``eliminated_block``, A, u, anchor and blocks cover the kept coefficients only (p = p_k).
     """
 
     A: np.ndarray
@@ -215,11 +215,11 @@ class WorkingProblem:
     blocks: list[PenaltyBlock]
     n: float
     scale: float | None = None  # known φ; None when it must be estimated
-    eliminated: EliminatedBlock | None = None
+    eliminated_block: EliminatedBlock | None = None
 
     @property
     def n_penalties(self) -> int:
-        return sum(len(b.matrices) for b in self.blocks) + (self.eliminated is not None)
+        return sum(len(b.matrices) for b in self.blocks) + (self.eliminated_block is not None)
 
     @property
     def null_dim(self) -> int:
@@ -253,7 +253,7 @@ class Solution:
     iterations: int = 0
     converged: bool = True
     notes: list[str] = field(default_factory=list)
-    eliminated: EliminatedInverse | None = None
+    eliminated_inverse: EliminatedInverse | None = None
     search: dict | None = None  # history of the smoothing search (:func:`select`), JSON types
     trace: float | None = None  # τ = tr(H⁻¹A) when ``edf`` was not formed (light solve)
 
@@ -333,7 +333,7 @@ def solve(problem: WorkingProblem, lam: np.ndarray, *, full: bool = True,
     A, u = problem.A, problem.u
     S = problem.penalty(lam)
     log_det_S = sum(blk.logdet(lam)[0] for blk in problem.blocks)
-    if problem.eliminated is not None:
+    if problem.eliminated_block is not None:
         return _solve_eliminated(problem, lam, S, log_det_S, full)
     chol = ScaledCholesky(A + S)
     b = A @ problem.anchor + u
@@ -357,7 +357,7 @@ def _solve_eliminated(problem: WorkingProblem, lam: np.ndarray, S: np.ndarray,
                       log_det_S: float, full: bool = True) -> Solution:
     """:func:`solve` with the eliminated block taken out by its Schur complement:
     O(L·p_k²) time and O(L·p_k) memory (see the module docstring)."""
-    A, u, el = problem.A, problem.u, problem.eliminated
+    A, u, el = problem.A, problem.u, problem.eliminated_block
     lam_e = lam[el.index]
     h = el.d + lam_e
     G = el.C / h[:, None]
@@ -384,7 +384,7 @@ def _solve_eliminated(problem: WorkingProblem, lam: np.ndarray, S: np.ndarray,
     # diag(H⁻¹A): kept M⁻¹(A_kk − CᵀG); eliminated (d − λ_e·diag(GM⁻¹Cᵀ))/h
     sol.H_inv = M_inv
     sol.edf = np.concatenate([np.einsum("ij,ji->i", M_inv, Ms), (el.d - lam_e * r) / h])
-    sol.eliminated = EliminatedInverse(h=h, G=G, GMi=GMi, spread=r / h)
+    sol.eliminated_inverse = EliminatedInverse(h=h, G=G, GMi=GMi, spread=r / h)
     return sol
 
 
@@ -402,7 +402,7 @@ class _Criterion:
         self.evaluations = 0       # penalized solves so far (each costs one factorisation)
         if name == "ubre" and self.scale is None:
             raise FitError("UBRE needs a known scale; use criterion='gcv' or 'reml'")
-        if name != "reml" and problem.eliminated is not None:
+        if name != "reml" and problem.eliminated_block is not None:
             raise FitError(f"{name.upper()} works on the full problem; eliminate no block")
 
     def lam(self, rho: np.ndarray) -> np.ndarray:
@@ -502,12 +502,12 @@ class _Criterion:
         tr1 = np.zeros(k)
         dp1[:len(pens)] = [lam[j] * g[sl] @ sg[j] for j, (sl, _) in enumerate(pens)]
         tr1[:len(pens)] = [lam[j] * np.sum(Hi[sl, sl] * m) for j, (sl, m) in enumerate(pens)]
-        if prob.eliminated is not None:
-            ld_grad[-1] = prob.eliminated.logdet(lam)[1]
+        if prob.eliminated_block is not None:
+            ld_grad[-1] = prob.eliminated_block.logdet(lam)[1]
             dp1[-1], tr1[-1] = _eliminated_first(sol, lam)
         dp2 = np.diag(dp1)
         tr2 = np.diag(tr1)
-        if prob.eliminated is not None:
+        if prob.eliminated_block is not None:
             _eliminated_second(sol, lam, pens, sg, dp2, tr2)
         for i, (sli, mi) in enumerate(pens):
             for j in range(i, len(pens)):
@@ -548,7 +548,7 @@ class _Criterion:
 def _eliminated_first(sol: Solution, lam: np.ndarray) -> tuple[float, float]:
     """λ_e γ_eᵀγ_e and λ_e tr(H⁻¹_ee) = λ_e(Σ1/h + tr(M⁻¹GᵀG)): the eliminated block's
     entries of the first derivatives of D_p and log|H|."""
-    inv = sol.eliminated
+    inv = sol.eliminated_inverse
     lam_e = lam[-1]
     g_e = sol.gamma[len(sol.gamma) - len(inv.h):]
     return lam_e * float(g_e @ g_e), lam_e * float(np.sum(inv.diagonal()))
@@ -565,7 +565,7 @@ def _eliminated_second(sol: Solution, lam: np.ndarray, pens: list, sg: list,
     H⁻¹_ee = diag(1/h) + GM⁻¹Gᵀ, γ_eᵀH⁻¹_ee γ_e = Σγ_e²/h + wᵀM⁻¹w (w = Gᵀγ_e) and
     tr(H⁻¹_ee²) = Σ1/h² + 2Σ spread/h + tr(P·GᵀG).
     """
-    inv, Mi = sol.eliminated, sol.H_inv
+    inv, Mi = sol.eliminated_inverse, sol.H_inv
     h, G = inv.h, inv.G
     lam_e = lam[-1]
     g_e = sol.gamma[len(sol.gamma) - len(h):]
@@ -681,9 +681,9 @@ def smoothing_uncertainty(problem: WorkingProblem, sol: Solution,
         sg = np.zeros(k)
         sg[sl] = m @ at.gamma[sl]
         columns.append(-at.lam[j] * (at.H_inv @ sg))
-    if problem.eliminated is not None:
+    if problem.eliminated_block is not None:
         g_e = at.gamma[k:]
-        columns.append(at.lam[-1] * (at.H_inv @ (at.eliminated.G.T @ g_e)))
+        columns.append(at.lam[-1] * (at.H_inv @ (at.eliminated_inverse.G.T @ g_e)))
     J = np.column_stack(columns)[:, free]
     return J @ V_rho @ J.T
 
@@ -921,8 +921,8 @@ def _sweep_axes(problem: WorkingProblem, base: np.ndarray, free: np.ndarray
         a = np.diag(problem.A)[blk.sl]
         for m in blk.matrices:
             spans.append(_span(np.diag(m), a))
-    if problem.eliminated is not None:  # S_e = I, A_ee = diag(d)
-        spans.append(_span(np.ones(problem.eliminated.size), problem.eliminated.d))
+    if problem.eliminated_block is not None:  # S_e = I, A_ee = diag(d)
+        spans.append(_span(np.ones(problem.eliminated_block.size), problem.eliminated_block.d))
     axes = []
     for j in np.flatnonzero(free):
         lo, hi = np.log(np.asarray(spans[j]) / base[j])
@@ -1004,7 +1004,7 @@ def relative_scale(problem: WorkingProblem) -> np.ndarray:
         for m in blk.matrices:
             s = np.linalg.norm(m)
             out.append(a / s if s > 0 and a > 0 else 1.0)
-    el = problem.eliminated
+    el = problem.eliminated_block
     if el is not None:  # A_ee = diag(d), S_e = I
         a = np.linalg.norm(el.d)
         out.append(a / np.sqrt(el.size) if a > 0 else 1.0)

@@ -148,7 +148,7 @@ def _ff_diagonal(sol: Solution, A: np.ndarray) -> np.ndarray:
     F_ke = M⁻¹Cᵀdiag(λ_e/h), F_ek = G(I − F_kk), so
     (F²)_kk = F_kk² + M⁻¹Cᵀdiag(λ_e/h²)C(I − F_kk)."""
     Hi = sol.H_inv
-    inv = sol.eliminated
+    inv = sol.eliminated_inverse
     if inv is None:
         F = Hi @ A
         return np.einsum("ij,ji->i", F, F)
