@@ -56,7 +56,7 @@ def _problems(scale):
     block = sm.EliminatedBlock(d=np.diag(A)[pk:].copy(), C=A[pk:, :pk], u=u[pk:],
                                anchor=anchor[pk:], index=2)
     elim = sm.WorkingProblem(A=A[:pk, :pk], u=u[:pk], e=e, anchor=anchor[:pk], blocks=kept,
-                             n=n, scale=scale, eliminated=block)
+                             n=n, scale=scale, eliminated_block=block)
     return full, elim, pk
 
 
@@ -70,8 +70,8 @@ def test_eliminated_problem_matches_the_full_one(scale):
     for name in ("deviance", "penalized", "log_det_H", "log_det_S"):
         assert getattr(b, name) == pytest.approx(getattr(a, name), rel=1e-12), name
     np.testing.assert_allclose(b.H_inv, a.H_inv[:pk, :pk], rtol=1e-10, atol=1e-14)
-    np.testing.assert_allclose(-b.eliminated.GMi, a.H_inv[pk:, :pk], rtol=1e-10, atol=1e-14)
-    np.testing.assert_allclose(b.eliminated.diagonal(), np.diag(a.H_inv)[pk:], rtol=1e-12)
+    np.testing.assert_allclose(-b.eliminated_inverse.GMi, a.H_inv[pk:, :pk], rtol=1e-10, atol=1e-14)
+    np.testing.assert_allclose(b.eliminated_inverse.diagonal(), np.diag(a.H_inv)[pk:], rtol=1e-12)
     # REML value, gradient and exact Hessian in log λ
     free = np.ones(3, dtype=bool)
     rho = np.array([0.3, -1.0, 0.8])
@@ -104,7 +104,7 @@ def test_structured_row_variances_match_the_dense_kernel():
     kernels.quadratic_form_rows(idx, val, enc.lev, pd_, V, want)
     e = slice(pd_ + l1, p)
     kept = np.arange(pd_ + l1)
-    cov = Covariance(V[np.ix_(kept, kept)], eliminated=e, diag=np.diag(V)[e].copy(),
+    cov = Covariance(V[np.ix_(kept, kept)], eliminated_columns=e, diag=np.diag(V)[e].copy(),
                      cross=V[e][:, kept])
     got = np.empty(n)
     cov.row_variances(enc, pd_, got)

@@ -147,7 +147,7 @@ def decode(data: dict, where: str = "the model file") -> dict:
         raise ModelFileError(f"{where} is inconsistent: its terms have {p} coefficients but it "
                              f"holds a {cov.shape} covariance")
     _check_finite_covariance(cov, where)
-    if cov.structured and cov.eliminated not in Design(bases).slices:
+    if cov.structured and cov.eliminated_columns not in Design(bases).slices:
         raise ModelFileError(f"{where} is inconsistent: the covariance's eliminated columns "
                              "are not those of a term")
     if [b.spec.label for b in bases[1:]] != labels:

@@ -168,6 +168,24 @@ class FitResult:
     def rows(self) -> int:
         return self.statistics["rows"]
 
+    # ---- term tests ----
+    @property
+    def term_tests(self) -> pa.Table:
+        """A test of whether each term is needed, one row per term (intercept excepted):
+        ``term``, ``test`` (``"wald"`` for unpenalized terms, ``"wald_truncated"`` for
+        penalized ones, Wood 2013), ``statistic`` (the Wald-type statistic T), ``df`` (its
+        reference degrees of freedom), ``residual_df`` (the F form's denominator when the
+        scale is estimated; null when it is known), ``reference`` (``"chi2"``: T against
+        χ²_df, or a weighted sum of χ²₁ for a fractional df; ``"F"``: T/df against
+        F(df, residual_df)), ``p_value``, ``edf`` and ``note``. Computed at the end of the
+        fit from the dense stage (see :mod:`tallgam.solve.term_tests`); empty for a model
+        file written before they existed."""
+        rows = self.statistics.get("term_tests") or []
+        return pa.Table.from_pylist(
+            [{k: r.get(k) for k in TERM_TEST_SCHEMA.names} for r in rows],
+            schema=TERM_TEST_SCHEMA)
+    # ---- end of term tests ----
+
     # ------------------------------------------------------------------ coefficients
     def term(self, name: str) -> tuple[Basis, slice]:
         """The basis and raw coefficient range of a term, by label or column name."""
@@ -379,6 +397,13 @@ class FitResult:
         from tallgam.outputs.modelfile import save
 
         save(self, path)
+
+
+TERM_TEST_SCHEMA = pa.schema([("term", pa.string()), ("test", pa.string()),
+                              ("statistic", pa.float64()), ("df", pa.float64()),
+                              ("residual_df", pa.float64()), ("reference", pa.string()),
+                              ("p_value", pa.float64()), ("edf", pa.float64()),
+                              ("note", pa.string())])
 
 
 def _cat(parts: list[np.ndarray]) -> np.ndarray:

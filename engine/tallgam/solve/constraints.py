@@ -45,9 +45,9 @@ class Constraints:
         self.design = design
         if eliminate_from is None:
             eliminate_from = Tuning().eliminate_levels
-        self.eliminated = (_eliminated_basis(design, eliminate_from)
+        self.eliminated_term = (_eliminated_basis(design, eliminate_from)
                            if criterion in ("reml", "fixed") else None)
-        kept_bases = [j for j in range(len(design.bases)) if j != self.eliminated]
+        kept_bases = [j for j in range(len(design.bases)) if j != self.eliminated_term]
         zs, penalties = {}, {}
         for j in kept_bases:
             b, sl = design.bases[j], design.slices[j]
@@ -72,9 +72,9 @@ class Constraints:
             self.free_slices[j] = slice(off, off + zs[j].shape[1])
             off += zs[j].shape[1]
         self.n_kept = off
-        if self.eliminated is not None:
-            size = design.bases[self.eliminated].n_raw
-            self.free_slices[self.eliminated] = slice(off, off + size)
+        if self.eliminated_term is not None:
+            size = design.bases[self.eliminated_term].n_raw
+            self.free_slices[self.eliminated_term] = slice(off, off + size)
             off += size
         self.n_free = off
         self.blocks: list[PenaltyBlock] = []
@@ -96,11 +96,11 @@ class Constraints:
             self.penalty_exponents.extend(exps)
             self.penalty_owner.extend([j] * len(mats))
             first += len(mats)
-        if self.eliminated is not None:
+        if self.eliminated_term is not None:
             # its penalties() would be an L × L identity: only its fixed λ is asked for
-            self.fixed.extend(design.bases[self.eliminated].fixed_smoothing())
+            self.fixed.extend(design.bases[self.eliminated_term].fixed_smoothing())
             self.penalty_exponents.append(0)
-            self.penalty_owner.append(self.eliminated)
+            self.penalty_owner.append(self.eliminated_term)
         from tallgam.solve.shapes import ShapeConstraints
 
         self.shapes = ShapeConstraints(self)
@@ -112,32 +112,32 @@ class Constraints:
             return [float(np.ldexp(v, -e)) for v, e in zip(lam, self.penalty_exponents)]
 
     @property
-    def eliminated_raw(self) -> slice | None:
+    def eliminated_columns(self) -> slice | None:
         """Raw columns of the eliminated term (None when nothing is eliminated)."""
-        return None if self.eliminated is None else self.design.slices[self.eliminated]
+        return None if self.eliminated_term is None else self.design.slices[self.eliminated_term]
 
     def to_free(self, beta: np.ndarray) -> np.ndarray:
-        if self.eliminated is None:
+        if self.eliminated_term is None:
             return self.Z.T @ beta
-        return np.concatenate([self.Z.T @ beta[self.kept], beta[self.eliminated_raw]])
+        return np.concatenate([self.Z.T @ beta[self.kept], beta[self.eliminated_columns]])
 
     def to_raw(self, gamma: np.ndarray) -> np.ndarray:
-        if self.eliminated is None:
+        if self.eliminated_term is None:
             return self.Z @ gamma
         beta = np.zeros(self.design.p)
         beta[self.kept] = self.Z @ gamma[:self.n_kept]
-        beta[self.eliminated_raw] = gamma[self.n_kept:]
+        beta[self.eliminated_columns] = gamma[self.n_kept:]
         return beta
 
     def covariance(self, sol: Solution, scale: float) -> Covariance:
         """The Bayesian covariance φ·ZH⁻¹Zᵀ of the raw coefficients; with an eliminated
         term only its diagonal and its cross block with the kept columns."""
         kept = self.Z @ (sol.H_inv * scale) @ self.Z.T
-        if self.eliminated is None:
+        if self.eliminated_term is None:
             return Covariance(kept)
-        inv = sol.eliminated  # H⁻¹_ek = −GM⁻¹, and Z_e = I
-        return Covariance(kept, eliminated=self.eliminated_raw, diag=scale * inv.diagonal(),
-                          cross=-scale * (inv.GMi @ self.Z.T))
+        inv = sol.eliminated_inverse  # H⁻¹_ek = −GM⁻¹, and Z_e = I
+        return Covariance(kept, eliminated_columns=self.eliminated_columns,
+                          diag=scale * inv.diagonal(), cross=-scale * (inv.GMi @ self.Z.T))
 
     def penalty_value(self, lam, beta: np.ndarray) -> float:
         """βᵀS_λβ, formed block by block in free coordinates, where each single penalty is
@@ -151,7 +151,7 @@ class Constraints:
             g = gamma[blk.sl]
             for j, m in enumerate(blk.matrices):
                 total += lam[blk.first + j] * float(g @ m @ g)
-        if self.eliminated is not None:
+        if self.eliminated_term is not None:
             g = gamma[self.n_kept:]
             total += lam[-1] * float(g @ g)
         return total
@@ -160,14 +160,14 @@ class Constraints:
                 ) -> WorkingProblem:
         d = self.design
         offsets, sizes = list(d.level_offsets), d.level_sizes
-        if self.eliminated is None:
+        if self.eliminated_term is None:
             gram = state.gram(offsets, sizes)
             A = self.Z.T @ gram @ self.Z
             u = self.Z.T @ state.rhs
             return WorkingProblem(A=0.5 * (A + A.T), u=u, e=state.scalars["resid_ss"],
                                   anchor=self.to_free(anchor_beta), blocks=self.blocks,
                                   n=state.scalars["rows"], scale=scale)
-        term = d.level_terms.index(d.bases[self.eliminated])
+        term = d.level_terms.index(d.bases[self.eliminated_term])
         A = self.Z.T @ state.gram(offsets, sizes, skip=term) @ self.Z
         diag, cross, rhs = state.level_block(term, offsets, sizes)
         anchor = self.to_free(anchor_beta)
@@ -176,7 +176,7 @@ class Constraints:
         return WorkingProblem(A=0.5 * (A + A.T), u=self.Z.T @ state.rhs[self.kept],
                               e=state.scalars["resid_ss"], anchor=anchor[:self.n_kept],
                               blocks=self.blocks, n=state.scalars["rows"], scale=scale,
-                              eliminated=block)
+                              eliminated_block=block)
 
     def check_identifiable(self, problem: WorkingProblem) -> None:
         """FitError naming the terms involved when some coefficients are undetermined
@@ -188,7 +188,7 @@ class Constraints:
             for m in blk.matrices:
                 S[blk.sl, blk.sl] += m * (a / (np.linalg.norm(m) or 1.0))
         M = A + S
-        el = problem.eliminated
+        el = problem.eliminated_block
         if el is not None:  # its ridge makes it determined: check the Schur complement
             h = el.d + (np.linalg.norm(el.d) or 1.0) / np.sqrt(el.size)
             M = M - el.C.T @ (el.C / h[:, None])

@@ -7,7 +7,7 @@ xᵀVx takes that level's variance and its covariances with the other ("kept") c
 :class:`Covariance` holds
 
 * ``dense`` (k × k): the covariance of the kept raw columns ``kept`` (k of them, sorted);
-* for the eliminated term (raw columns ``eliminated``, L of them): ``diag`` (L,), the
+* for the eliminated term (raw columns ``eliminated_columns``, L of them): ``diag`` (L,), the
   variances of its levels, and ``cross`` (L × k), their covariances with the kept columns.
 
 Without an eliminated term ``dense`` is the whole p × p matrix. Covariances between two
@@ -27,23 +27,23 @@ from tallgam.passes import kernels
 class Covariance:
     """Covariance of the p raw coefficients (raw order: dense group, then levels)."""
 
-    def __init__(self, dense: np.ndarray, eliminated: slice | None = None,
+    def __init__(self, dense: np.ndarray, eliminated_columns: slice | None = None,
                  diag: np.ndarray | None = None, cross: np.ndarray | None = None):
         self.dense = np.asarray(dense, dtype=np.float64)
         if self.dense.ndim != 2 or self.dense.shape[0] != self.dense.shape[1]:
             raise ValueError(f"a covariance must be square, not of shape {self.dense.shape}")
-        self.eliminated = eliminated
-        if eliminated is None:
+        self.eliminated_columns = eliminated_columns
+        if eliminated_columns is None:
             self.p = self.dense.shape[0]
             self.kept = np.arange(self.p)
             self.diag = self.cross = None
             return
         self.diag = np.asarray(diag, dtype=np.float64)
         self.cross = np.asarray(cross, dtype=np.float64)
-        size = eliminated.stop - eliminated.start
+        size = eliminated_columns.stop - eliminated_columns.start
         self.p = self.dense.shape[0] + size
-        self.kept = np.concatenate([np.arange(eliminated.start),
-                                    np.arange(eliminated.stop, self.p)])
+        self.kept = np.concatenate([np.arange(eliminated_columns.start),
+                                    np.arange(eliminated_columns.stop, self.p)])
         if self.diag.shape != (size,) or self.cross.shape != (size, len(self.kept)):
             raise ValueError(f"the eliminated term has {size} levels and {len(self.kept)} "
                              f"kept columns, but diag {self.diag.shape} and cross "
@@ -51,7 +51,7 @@ class Covariance:
 
     @property
     def structured(self) -> bool:
-        return self.eliminated is not None
+        return self.eliminated_columns is not None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -60,7 +60,7 @@ class Covariance:
     def matrix(self) -> np.ndarray:
         """The p × p array (only when no term is eliminated)."""
         if self.structured:
-            n = self.eliminated.stop - self.eliminated.start
+            n = self.eliminated_columns.stop - self.eliminated_columns.start
             raise SpecError(f"the covariance of this fit is kept in structured form: its "
                             f"random effect with {n} levels was eliminated, and only the "
                             "variances of its levels and their covariances with the other "
@@ -72,14 +72,14 @@ class Covariance:
         out = np.zeros(self.p)
         out[self.kept] = np.diag(self.dense)
         if self.structured:
-            out[self.eliminated] = self.diag
+            out[self.eliminated_columns] = self.diag
         return out
 
     def block(self, sl: slice) -> np.ndarray:
         """The dense covariance of the raw columns ``sl`` (a term's own block)."""
         if not self.structured:
             return self.dense[sl, sl]
-        e = self.eliminated
+        e = self.eliminated_columns
         if sl.start < e.stop and e.start < sl.stop:
             self.matrix()  # raises: the eliminated term has no dense block
         a = int(np.searchsorted(self.kept, sl.start))
@@ -88,7 +88,7 @@ class Covariance:
     def term_variances(self, sl: slice, X: np.ndarray) -> np.ndarray:
         """diag(X V_sl Xᵀ) (n,) for rows X (n × |sl|) of the term with raw columns ``sl``.
         For the eliminated term the rows may have one non-zero each (a level's indicator)."""
-        if self.structured and sl == self.eliminated:
+        if self.structured and sl == self.eliminated_columns:
             nonzero = X != 0
             if np.any(np.count_nonzero(nonzero, axis=1) > 1):
                 self.matrix()
@@ -101,7 +101,7 @@ class Covariance:
         a = np.asarray(a, dtype=np.float64)
         out = float(a[self.kept] @ self.dense @ a[self.kept])
         if self.structured:
-            ae = a[self.eliminated]
+            ae = a[self.eliminated_columns]
             if np.count_nonzero(ae) > 1:
                 self.matrix()  # raises: covariances between its levels are not kept
             out += float(ae @ (self.diag * ae)) + 2.0 * float(ae @ self.cross @ a[self.kept])
@@ -115,14 +115,15 @@ class Covariance:
         position = np.full(self.p, -1, dtype=np.int64)
         position[self.kept] = np.arange(len(self.kept))
         kernels.quadratic_form_rows_eliminated(
-            enc.idx, enc.val, enc.lev, pd, position, self.dense, self.eliminated.start,
+            enc.idx, enc.val, enc.lev, pd, position, self.dense, self.eliminated_columns.start,
             self.diag, self.cross, out)
 
     # ------------------------------------------------------------------ model file
     def to_dict(self) -> dict:
         out = {"dense": encode_array(self.dense), "eliminated": None}
         if self.structured:
-            out["eliminated"] = {"columns": [self.eliminated.start, self.eliminated.stop],
+            e = self.eliminated_columns
+            out["eliminated"] = {"columns": [e.start, e.stop],
                                  "diag": encode_array(self.diag),
                                  "cross": encode_array(self.cross)}
         return out

@@ -38,7 +38,13 @@ from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
 from tallgam.passes.state import PassState
 from tallgam.progress import Event, make_callback
 from tallgam.solve.constraints import Constraints, check_memory
-from tallgam.solve.smoothing import RHO_BOUND, Solution, select, solve
+from tallgam.solve.smoothing import (
+    RHO_BOUND,
+    Solution,
+    select,
+    smoothing_uncertainty,
+    solve,
+)
 from tallgam.terms.base import Basis, InterceptBasis
 
 
@@ -253,6 +259,7 @@ class _Run:
         self.scale_est = 1.0
         self.passes = 0
         self.extra_records: list[PassRecord] = []
+        self.searches: list[dict] = []  # smoothing-search history of every selection
 
     def plan(self, beta, beta_prev=None) -> PassPlan:
         return PassPlan(inputs=self.inputs, design=self.design, family=self.fam,
@@ -363,6 +370,8 @@ class _Run:
                 if lam is not None:  # warm start: from the previous fit's smoothing
                     rho = _rho_of(lam, problem, constraints)
             sol = select(problem, model.criterion, constraints.fixed, start=rho)
+            if sol.search is not None:
+                self.searches.append({"pass": self.passes, **sol.search})
             if constraints.shapes:
                 sol = constraints.shapes.apply(sol, problem)
             notes.extend(n for n in sol.notes if n not in notes)
@@ -441,7 +450,36 @@ class _Run:
                       history=history + self.extra_records,
                       null_deviance=null_dev, loglik=loglik, notes=notes, dropped_rows=dropped,
                       seconds=0.0, expressions=resolved_expressions(self.inputs), family=fam)
+        fs.extra_statistics.update(self._dense_summaries(state, beta, solution, constraints,
+                                                         scale, n))
         return fs
+
+    # ---- smoothing-search history and term tests: dense stage only, no data pass ----
+    def _dense_summaries(self, state, beta, solution, constraints, scale, rows) -> dict:
+        """``smoothing_search`` (the search of every selection, its free penalties named)
+        and ``term_tests`` (see :mod:`tallgam.solve.term_tests`), as JSON types."""
+        from tallgam.solve.term_tests import term_tests
+
+        bases = self.design.bases
+        out: dict = {}
+        if self.searches:
+            owners = constraints.penalty_owner
+            names = [bases[j].label if owners.count(j) == 1
+                     else f"{bases[j].label} #{owners[:k + 1].count(j)}"
+                     for k, j in enumerate(owners)]
+            out["smoothing_search"] = {
+                "penalties": [names[k] for k, f in enumerate(constraints.fixed) if f is None],
+                "steps": self.searches}
+        problem = constraints.problem(state, beta, 1.0 if self.fam.scale_known else None)
+        uncertainty = (smoothing_uncertainty(problem, solution, constraints.fixed)
+                       if self.model.criterion == "reml" else None)
+        penalized = [j in constraints.penalty_owner for j in range(len(bases))]
+        out["term_tests"] = term_tests([b.label for b in bases], constraints.free_slices,
+                                       penalized, solution, problem.A, scale,
+                                       self.fam.scale_known, rows, constraints.eliminated_term,
+                                       uncertainty)
+        return out
+    # ---- end of smoothing-search history and term tests ----
 
 
 ETA_TOLERANCE = 1e-6  # largest change of the linear predictor between the last two iterates

@@ -62,8 +62,8 @@ class ShapeConstraints:
                 g = _solve_psd(Q[np.ix_(active, active)], (C @ gamma[kept])[active])
                 gamma = gamma.copy()
                 gamma[kept] = gamma[kept] - P[:, active] @ g
-                if sol.eliminated is not None:  # rows of H⁻¹Cᵀ there: H⁻¹_ek C_kᵀ = −G·P
-                    gamma[problem.A.shape[0]:] += sol.eliminated.G @ (P[:, active] @ g)
+                if sol.eliminated_inverse is not None:  # rows of H⁻¹Cᵀ there: H⁻¹_ek C_kᵀ = −G·P
+                    gamma[problem.A.shape[0]:] += sol.eliminated_inverse.G @ (P[:, active] @ g)
         if not len(active):
             return sol
         return _project(sol, problem, gamma, P[:, active], Q[np.ix_(active, active)])
@@ -110,7 +110,7 @@ def _project(sol: Solution, problem: WorkingProblem, gamma: np.ndarray, P: np.nd
     H_inv = sol.H_inv - PG @ P.T
     A = problem.A
     AP = A @ P
-    elim = sol.eliminated
+    elim = sol.eliminated_inverse
     new_elim = elim
     if elim is not None:
         Pe = -elim.G @ P           # rows of H⁻¹Cᵀ for the eliminated block: H⁻¹_ek C_kᵀ
@@ -118,20 +118,21 @@ def _project(sol: Solution, problem: WorkingProblem, gamma: np.ndarray, P: np.nd
         GMi = elim.GMi + (Pe @ Gi) @ P.T
         spread = elim.spread - np.sum((Pe @ Gi) * Pe, axis=1)
         new_elim = replace(elim, GMi=GMi, spread=spread)
-        AP = AP + problem.eliminated.C.T @ Pe
+        AP = AP + problem.eliminated_block.C.T @ Pe
     edf = sol.edf.copy()
     k = A.shape[0]
     edf[:k] -= np.sum(PG * AP, axis=1)
     if elim is not None:
-        edf[k:] -= np.sum((Pe @ Gi) * (problem.eliminated.C @ P
-                                       + problem.eliminated.d[:, None] * Pe), axis=1)
+        edf[k:] -= np.sum((Pe @ Gi) * (problem.eliminated_block.C @ P
+                                       + problem.eliminated_block.d[:, None] * Pe), axis=1)
     delta = gamma[:k] - problem.anchor
     dev = float(problem.e - 2.0 * delta @ problem.u + delta @ A @ delta)
     pen = float(gamma[:k] @ problem.penalty(sol.lam) @ gamma[:k])
     if elim is not None:
-        de = gamma[k:] - problem.eliminated.anchor
-        dev += float(-2.0 * de @ problem.eliminated.u + 2.0 * de @ problem.eliminated.C @ delta
-                     + np.sum(problem.eliminated.d * de * de))
-        pen += float(sol.lam[problem.eliminated.index] * gamma[k:] @ gamma[k:])
+        block = problem.eliminated_block
+        de = gamma[k:] - block.anchor
+        dev += float(-2.0 * de @ block.u + 2.0 * de @ block.C @ delta + np.sum(block.d * de * de))
+        pen += float(sol.lam[block.index] * gamma[k:] @ gamma[k:])
     return replace(sol, gamma=gamma, H_inv=0.5 * (H_inv + H_inv.T), edf=edf,
-                   deviance=max(dev, 0.0), penalized=max(dev, 0.0) + pen, eliminated=new_elim)
+                   deviance=max(dev, 0.0), penalized=max(dev, 0.0) + pen,
+                   eliminated_inverse=new_elim)
