@@ -33,6 +33,7 @@ from tallgam.outputs.formatting import (
 )
 
 MAX_LEVELS = 12  # levels listed per term; the relativity tables hold them all
+TEST_NAMES = {"wald": "Wald test", "wald_truncated": "Wood (2013) test for penalized terms"}
 WIDTH = 92
 
 
@@ -206,8 +207,8 @@ def _terms(fit, rel) -> list[str]:
         lo_hi = ranges.get(b.label)
         spread = "–" if lo_hi is None else f"{relativity(lo_hi[0])} to {relativity(lo_hi[1])}"
         test = tests.get(b.label) or tests.get(b.title)
-        if test is not None:
-            names.add(str(test.get("test", "")))
+        if test is not None and test.get("p_value") is not None:
+            names.add(TEST_NAMES.get(str(test.get("test")), str(test.get("test"))))
         rows.append([b.title, b.kind.replace("_", " "), fixed(fit.edf.get(b.label), 2),
                      smoothing(fit.smoothing.get(b.label)), spread,
                      p_value(test.get("p_value")) if test is not None else "–"])
@@ -227,7 +228,7 @@ def _terms(fit, rel) -> list[str]:
             "training data (numeric factors: the central 99% of the training weight)")
     out += textwrap.wrap(what, WIDTH, initial_indent="  ", subsequent_indent="  ")
     if tests:
-        used = ", ".join(sorted(n for n in names if n))
+        used = "; ".join(sorted(n for n in names if n))
         note = "p-value: the test that the term is not needed" + (f" ({used})" if used else "")
     else:
         note = "p-value: no test of the terms in this model file"
