@@ -144,9 +144,10 @@ def test_scratch_copy_gives_the_streamed_fit_and_is_removed(tmp_path, monkeypatc
     assert len(reads) == 1                      # only the first pass read the data
     assert any(s.startswith("tallgam-scratch-") for s in seen)
     assert os.listdir(folder) == []             # removed when the fit ended
-    # same rows, same batches, same order of summation: the same numbers
-    np.testing.assert_array_equal(cached.coefficients_raw, streamed.coefficients_raw)
-    assert cached.deviance == streamed.deviance
+    # the same rows; the copy holds each batch sorted by its largest term's codes and
+    # recomputes ln(exposure), so sums differ in the last digits only: the smoothing search
+    # then stops at the same optimum to its own tolerance
+    assert_same_fit(streamed, cached, df, 1e-6)
 
 
 def test_scratch_copy_is_removed_when_the_fit_fails(tmp_path):

@@ -43,6 +43,29 @@ class Tuning:
         this many rows.
     tables_memory : str, default "1GB"
         DuckDB's working memory for hold-out tables (it spills to disk beyond).
+    blas_width : int, default 4
+        Exact passes form XᵀWX of the dense group with BLAS on rows made dense when the
+        group has at most this many times as many columns as a row has non-zeros (0:
+        never; the sparse kernel then does it).
+    eta_tolerance : float, default 1e-6
+        PIRLS has converged when its next step would move the fitted values (the linear
+        predictor) by at most this, as a root mean square weighted by the working weights
+        (and gain at most the model's ``tolerance`` of the penalized deviance).
+    accelerate : bool, default True
+        Extrapolate PIRLS steps that shrink by a steady ratio (linear convergence).
+    binned_from_rows : int, default 500000
+        ``binned="auto"`` chooses binned passes from this many rows.
+    bin_move_share : float, default 0.25
+        ``binned="auto"`` bins continuous inputs only when no value moves by more than
+        this share of the knot interval it lies in (else exact passes).
+    max_bin_points : int, default 1600
+        ``binned="auto"`` doubles a column's grid from 200 values up to this many to meet
+        ``bin_move_share``.
+    sample_share : float, default 0.03
+        Fits of large data start with PIRLS on this share of the rows, held in memory
+        (0: never).
+    sample_min_rows : int, default 100000
+        ... at least this many rows; a sample of more than half the data is not drawn.
     """
 
     eliminate_levels: int = 200
@@ -52,13 +75,26 @@ class Tuning:
     table_rows: int = 4096
     partition_min_rows: int = 250_000
     tables_memory: str = "1GB"
+    blas_width: int = 4
+    eta_tolerance: float = 1e-6
+    accelerate: bool = True
+    binned_from_rows: int = 500_000
+    bin_move_share: float = 0.25
+    max_bin_points: int = 1600
+    sample_share: float = 0.03
+    sample_min_rows: int = 100_000
 
     def __post_init__(self):
         for name in ("eliminate_levels", "cell_limit", "exact_span", "table_rows",
-                     "partition_min_rows"):
+                     "partition_min_rows", "blas_width", "binned_from_rows",
+                     "max_bin_points", "sample_min_rows"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
                 raise SpecError(f"tuning {name} must be a whole number ≥ 0, got {v!r}")
+        for name in ("eta_tolerance", "bin_move_share", "sample_share"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v < 1:
+                raise SpecError(f"tuning {name} must be a number in [0, 1), got {v!r}")
 
 
 def positive_int(name: str, value, *, allow_none: bool = False) -> int | None:
@@ -72,17 +108,21 @@ def positive_int(name: str, value, *, allow_none: bool = False) -> int | None:
     return int(value)
 
 
+AUTO = "auto"
+
+
 def bin_points(binned) -> int | None:
-    """``binned=`` as grid values per binned column (None: exact passes)."""
-    if binned is None or binned is False:
+    """``binned=`` as grid values per binned column (None: exact passes, or ``"auto"``:
+    chosen by the fit)."""
+    if binned is None or binned == AUTO or binned is False:
         return None
     if binned is True:
         return DEFAULT_BIN_POINTS
     if (isinstance(binned, (int, np.integer)) and not isinstance(binned, bool)
             and int(binned) >= MIN_BIN_POINTS):
         return int(binned)
-    raise SpecError(f"binned takes False, True or a number of grid values of at least "
-                    f"{MIN_BIN_POINTS} for continuous columns, got {binned!r}")
+    raise SpecError(f"binned takes 'auto' (None), False, True or a number of grid values of "
+                    f"at least {MIN_BIN_POINTS} for continuous columns, got {binned!r}")
 
 
 @dataclass(frozen=True)
@@ -94,7 +134,7 @@ class RunOptions:
     threads: int | None = None
     progress: object = False
     cluster: object = None
-    binned: bool | int = False
+    binned: bool | int | str | None = AUTO
     scratch: str | bool | None = None
     tuning: Tuning = field(default_factory=Tuning)
 
@@ -123,8 +163,14 @@ class RunOptions:
 
     @property
     def bin_points(self) -> int | None:
-        """Grid values per binned continuous column (None: exact passes)."""
+        """Grid values per binned continuous column (None: exact passes, or chosen by the
+        fit when :attr:`auto_binned`)."""
         return bin_points(self.binned)
+
+    @property
+    def auto_binned(self) -> bool:
+        """The fit chooses between exact and binned passes (``binned`` None or "auto")."""
+        return self.binned is None or (isinstance(self.binned, str) and self.binned == AUTO)
 
     def but(self, **changes) -> RunOptions:
         """A copy with some options changed (validated again)."""

@@ -100,10 +100,10 @@ class Design:
         """out += X β for one block (``coef`` from :meth:`pass_coefficients`)."""
         kernels.linear_predictor(enc.idx, enc.val, enc.lev, coef[0], coef[1], out)
 
-    def accumulator(self, threads: int):
+    def accumulator(self, threads: int, blas_width: int = 4):
         from tallgam.passes.state import Accumulator
 
-        return Accumulator(self.pd, self.level_sizes, threads)
+        return Accumulator(self.pd, self.level_sizes, threads, blas_width)
 
     def _encode_block(self, cols, codes, start, stop) -> Encoded:
         n = stop - start

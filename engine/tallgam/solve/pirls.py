@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numba
 import numpy as np
@@ -26,15 +26,16 @@ from tallgam.data.inputs import (
     complete_rows_condition,
     model_inputs,
     resolved_expressions,
+    sample_rows,
 )
 from tallgam.data.profile import DataProfile, add_value_histograms, run_profile
-from tallgam.data.scratch import ScratchPolicy
+from tallgam.data.scratch import RowValues, ScratchPolicy
 from tallgam.data.sources import Source, open_source
-from tallgam.errors import ConvergenceWarning, FitError, TallgamWarning
+from tallgam.errors import ConvergenceWarning, FitError, SpecError, TallgamWarning
 from tallgam.options import RunOptions
-from tallgam.passes.binned import BinnedDesign
+from tallgam.passes.binned import choose_passes
 from tallgam.passes.design import Design
-from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan
+from tallgam.passes.run import LOGLIK_STEP, LocalPasses, PassPlan, StartModel
 from tallgam.passes.state import PassState
 from tallgam.progress import Event, make_callback
 from tallgam.solve.constraints import Constraints
@@ -79,11 +80,14 @@ class FitState:
     expressions: dict = field(default_factory=dict)
     family: object = None         # the family as fitted (estimated parameters filled in)
     extra_statistics: dict = field(default_factory=dict)
+    null_beta0: float | None = None  # the null model's intercept at the end
 
 
-def fit_model(model, data, options: RunOptions) -> FitState:
+def fit_model(model, data, options: RunOptions, start=None) -> FitState:
     """Fit ``model`` (a :class:`tallgam.Model`) to ``data`` as ``options`` say: the
-    profile pass, term set-up, data passes until PIRLS converges, the dense stage."""
+    profile pass, term set-up, data passes until PIRLS converges, the dense stage.
+    ``start``: a previous fit of the same model (a :class:`~tallgam.FitResult`) whose
+    predictions start the iterations (a refit)."""
     callback = make_callback(options.progress)
     source = open_source(data, threads=options.threads)
     owned = source is not data
@@ -95,6 +99,7 @@ def fit_model(model, data, options: RunOptions) -> FitState:
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
+            setup = prepare(model, source, options, callback)
             if options.cluster is not None:  # imported only here: the local path never loads dask
                 from tallgam.passes.cluster import ClusterPasses
 
@@ -103,15 +108,29 @@ def fit_model(model, data, options: RunOptions) -> FitState:
                                             min_rows=options.tuning.partition_min_rows)
             else:
                 policy = None
-                if options.bin_points is not None and options.scratch is not False:
+                if setup.binned is not None and options.scratch is not False:
                     folder = options.scratch if isinstance(options.scratch, str) else None
                     policy = ScratchPolicy(folder=folder)
                 runner = LocalPasses(source, callback, scratch_policy=policy)
-            setup = prepare(model, source, options, callback)
+            begin = _start_of(start, setup) if start is not None else {}
             if model.family.profiled() is not None:
-                fs = _profile_family_parameter(setup, runner)
+                fs = _profile_family_parameter(setup, runner, begin)
             else:
-                fs = _Run(setup, model.family, runner).iterate()
+                family = begin.pop("family", model.family)
+                warm = None
+                if not begin and options.cluster is None:
+                    warm = _sample_start(setup, family, source)
+                fs = _Run(setup, family, runner, warm=warm, **begin).iterate()
+                if warm is not None:
+                    fs.extra_statistics["sample"] = warm.report
+                    fs.notes.append(
+                        f"started from a sample of {warm.report['rows']:,} rows "
+                        f"({100 * warm.report['share']:.1f}%, "
+                        f"{warm.report['passes']} passes in memory)")
+            fs.extra_statistics["passes_mode"] = setup.mode
+            fs.notes.append(setup.mode_note)
+            if start is not None:
+                fs.notes.append("started from a previous fit's predictions (start=)")
         for w in caught:
             if str(w.message) not in fs.notes:
                 fs.notes.append(str(w.message))
@@ -127,6 +146,69 @@ def fit_model(model, data, options: RunOptions) -> FitState:
     return fs
 
 
+def _start_of(previous, setup: Setup) -> dict:
+    """What a refit takes from a previous fit (``start=``): its linear predictor (the
+    first pass's starting means), its smoothing parameters (the first selection's start)
+    and its family parameters. SpecError when it is not a fit of the same model."""
+    model, old = setup.model, previous.model
+    mine = [t.label for t in model.terms]
+    theirs = [t.label for t in old.terms]
+    differences = []
+    if old.response != model.response:
+        differences.append(f"response {old.response!r} instead of {model.response!r}")
+    if old.family.name != model.family.name or old.link.name != model.link.name:
+        differences.append(f"{old.family.name}/{old.link.name} instead of "
+                           f"{model.family.name}/{model.link.name}")
+    if theirs != mine:
+        differences.append(f"terms {', '.join(theirs)} instead of {', '.join(mine)}")
+    if differences:
+        raise SpecError("start= must be a fit of the same model; the one given has "
+                        + "; ".join(differences))
+    from tallgam.passes.design import Design
+
+    begin = {"start": StartModel(Design(list(previous.bases)),
+                                 np.asarray(previous.coefficients_raw, dtype=np.float64)),
+             "start_smoothing": dict(previous.smoothing)}
+    params = previous.statistics.get("family_parameters") or {}
+    begin["family"] = model.family.started_at(params)
+    return begin
+
+
+def _sample_start(setup: Setup, family, source: Source) -> Warm | None:
+    """PIRLS on a sample of the rows, held in memory, as the start of the full passes (None
+    when the data are too small for a sample to pay). The full passes then go on from
+    there to the full-data optimum; the sample only saves passes over the data."""
+    tuning = setup.options.tuning
+    n = setup.rows
+    size = max(tuning.sample_share * n, tuning.sample_min_rows)
+    if tuning.sample_share <= 0 or family.exact_with(setup.model.link) or size > 0.5 * n:
+        return None
+    share = size / n
+    setup.callback(Event("start", "sample"))
+    table = sample_rows(source, setup.inputs, share)
+    setup.callback(Event("end", "sample", rows=table.num_rows))
+    if table.num_rows < tuning.sample_min_rows // 2:
+        return None
+    sample = open_source(table, threads=setup.options.threads)
+    runner = LocalPasses(sample, setup.callback,
+                         scratch_policy=ScratchPolicy(memory=True) if setup.binned else None)
+    sub = replace(setup, inputs=setup.inputs.over_selected(), pass_rows=table.num_rows)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")   # a start: its own troubles show in the fit
+            try:
+                fs = _Run(sub, family, runner, name="sample pass").iterate()
+            except FitError:
+                return None
+    finally:
+        runner.close()
+        sample.close()
+    report = {"rows": int(table.num_rows), "share": float(share), "passes": int(fs.passes),
+              "converged": bool(fs.converged)}
+    return Warm(np.array(fs.beta, copy=True), np.array(fs.solution.lam, copy=True), fs.scale,
+                fs.family if family.estimates_nuisance else None, fs.null_beta0, report)
+
+
 @dataclass
 class Setup:
     """What a fit knows before its first data pass: the model's inputs, the profile, the
@@ -140,6 +222,15 @@ class Setup:
     dropped: int
     options: RunOptions
     callback: object
+    values: RowValues
+    mode: str = "exact"          # "exact" or "binned"
+    mode_note: str = ""          # why
+    pass_rows: int | None = None  # rows a pass reads when not the profile's (a sample)
+
+    @property
+    def rows(self) -> int:
+        """Rows a data pass reads."""
+        return self.pass_rows if self.pass_rows is not None else self.profile.rows
 
 
 def prepare(model, source: Source, options: RunOptions, callback) -> Setup:
@@ -168,16 +259,18 @@ def prepare(model, source: Source, options: RunOptions, callback) -> Setup:
                                      "left out (missing='drop')"), stacklevel=3)
     bases: list[Basis] = [InterceptBasis()] + [t.build(profile) for t in model.terms]
     design = Design(bases)
-    binned = None
-    if options.bin_points is not None:
-        binned = BinnedDesign(design, profile, options.bin_points, options.tuning)
-    return Setup(model, inputs, profile, design, binned, dropped, options, callback)
+    binned, note = None, "exact passes (binned=False)"
+    if options.auto_binned or options.bin_points is not None:
+        binned, note = choose_passes(design, profile, options.tuning, options.bin_points)
+    return Setup(model, inputs, profile, design, binned, dropped, options, callback,
+                 RowValues.of(inputs, profile), "binned" if binned is not None else "exact",
+                 note)
 
 
 PROFILE_XTOL = 5e-4  # a profiled family parameter is found to this tolerance
 
 
-def _profile_family_parameter(setup: Setup, runner) -> FitState:
+def _profile_family_parameter(setup: Setup, runner, begin: dict) -> FitState:
     """The family parameter (e.g. the Tweedie power) that maximises the log-likelihood of
     the fitted model: fits at the family's candidates, then a bounded one-dimensional
     search (Brent's method) between the neighbours of the best candidate, each fit started
@@ -194,8 +287,11 @@ def _profile_family_parameter(setup: Setup, runner) -> FitState:
         if value not in fits:
             setup.callback(Event("note", "profile", message=f"{spec.name} {value:.4g}"))
             near = min(fits, key=lambda v: abs(v - value)) if fits else None
-            start = None if near is None else fits[near]
-            fits[value] = _Run(setup, family.at(value), runner, start=start).iterate()
+            if near is None:  # the first fit: from a previous fit's predictions, if given
+                run = _Run(setup, family.at(value), runner, **begin)
+            else:
+                run = _Run(setup, family.at(value), runner, warm=warm_of(fits[near]))
+            fits[value] = run.iterate()
         return fits[value]
 
     grid = sorted(spec.candidates)
@@ -230,62 +326,113 @@ def _profile_standard_error(fits: dict, best: float, fit_at, spec) -> float | No
     return float(1.0 / np.sqrt(-curvature)) if curvature < 0 else None
 
 
+@dataclass
+class Warm:
+    """An iterate to start PIRLS from: raw coefficients of the same design, smoothing
+    parameters in the order of the constraints' penalties (or None), the scale estimate,
+    the family as fitted (estimated parameters filled in) and the null model's intercept."""
+
+    beta: np.ndarray
+    lam: np.ndarray | None
+    scale: float
+    family: object = None
+    null_beta0: float | None = None
+    report: dict = field(default_factory=dict)
+
+
+def warm_of(fs: FitState) -> Warm:
+    """The end of a fit as the start of another over the same design."""
+    return Warm(np.array(fs.beta, dtype=np.float64, copy=True),
+                np.array(fs.solution.lam, dtype=np.float64, copy=True), fs.scale)
+
+
 class _Run:
     """The PIRLS iterations of one fit (state between data passes). ``runner`` carries
-    out the passes: :class:`~tallgam.passes.run.LocalPasses` here, or a cluster runner."""
+    out the passes: :class:`~tallgam.passes.run.LocalPasses` here, or a cluster runner.
 
-    def __init__(self, setup: Setup, family, runner, start: FitState | None = None):
+    ``warm``: start from an iterate of the same design (a fit nearby, or the fit to a
+    sample of the rows); ``start``: start from a previous fit's linear predictor (a refit,
+    :class:`~tallgam.passes.run.StartModel`) with its smoothing ``start_smoothing`` (λ by
+    term label, as a fit result holds them); ``name``:
+    the progress task of a pass ("pass" or "sample pass")."""
+
+    def __init__(self, setup: Setup, family, runner, warm: Warm | None = None,
+                 start: StartModel | None = None, start_smoothing: dict | None = None,
+                 name: str = "pass"):
         model = setup.model
         self.setup = setup
+        self.tuning = setup.options.tuning
         self.model, self.fam, self.link = model, family, model.link
+        if warm is not None and warm.family is not None:
+            self.fam = warm.family
         self.runner, self.inputs, self.design = runner, setup.inputs, setup.design
         self.profile, self.callback = setup.profile, setup.callback
+        self.rows = setup.rows
         self.batch_rows = setup.options.batch_rows
         self.binned = setup.binned
-        self.start = start
+        self.warm = warm
+        self.start_model = start
+        self.start_smoothing = start_smoothing
+        self.name = name
         # e.g. gaussian with the identity link: one pass gives the exact normal equations
         self.single_pass = family.exact_with(model.link)
         self.y_mean = setup.profile.role("response").mean
         self.start_shift = _start_shift(family, model.link, setup.profile)
         self.null_beta0 = self.start_shift
+        if warm is not None and warm.null_beta0 is not None:
+            self.null_beta0 = warm.null_beta0
         self.scale_est = 1.0
         self.passes = 0
+        self.column_sums = True
         self.extra_records: list[PassRecord] = []
+        self.frozen: dict[int, float] = {}     # penalty -> λ held at its upper bound
+        self.at_bound: dict[int, int] = {}     # penalty -> selections in a row at the bound
 
     def plan(self, beta, beta_prev=None) -> PassPlan:
+        tuning = self.tuning
         return PassPlan(inputs=self.inputs, design=self.design, family=self.fam,
                         link=self.link, beta=beta, beta_prev=beta_prev,
                         start_shift=self.start_shift, null_beta0=self.null_beta0,
                         y_mean=self.y_mean, scale_est=self.scale_est,
                         batch_rows=self.batch_rows, binned=self.binned,
-                        more_passes=not self.single_pass,
-                        fused=self.setup.options.tuning.fused_loops)
+                        more_passes=not self.single_pass, fused=tuning.fused_loops,
+                        values=self.setup.values, blas_width=tuning.blas_width,
+                        start=self.start_model if beta is None else None,
+                        column_sums=self.column_sums)
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
-        state = self.runner.working(self.plan(beta, beta_prev), f"pass {self.passes}",
-                                    self.profile.rows)
+        state = self.runner.working(self.plan(beta, beta_prev), f"{self.name} {self.passes}",
+                                    self.rows)
         self.null_beta0 += _null_step(state)
         return state
 
     def loglik_pass(self, beta, scale: float) -> float:
         self.passes += 1
         t0 = time.perf_counter()
-        total = self.runner.loglik(self.plan(beta), scale, f"pass {self.passes}",
-                                   self.profile.rows)
+        total = self.runner.loglik(self.plan(beta), scale, f"{self.name} {self.passes}",
+                                   self.rows)
         self.extra_records.append(PassRecord(self.passes, "loglik", float("nan"),
                                              float("nan"), [], time.perf_counter() - t0,
-                                             self.profile.rows))
+                                             self.rows))
         return total
 
     def iterate(self) -> FitState:
-        """Data passes until the penalized deviance and the linear predictor settle.
+        """Data passes until the next step would change nothing.
 
         Every pass evaluates one iterate. A step is *worse* when it puts a mean outside
         the family's range (e.g. a negative Poisson mean under the identity link) or raises
         the penalized deviance at the current λ; a worse step is halved towards the last
-        accepted iterate. If halving cannot find a better point, the fit stops at the last
-        accepted iterate and says it did not converge.
+        accepted iterate (an extrapolated step first falls back to the plain one). If
+        halving cannot find a better point, the fit stops at the last accepted iterate and
+        says it did not converge.
+
+        After each pass the working model gives the next iterate; when that step would move
+        the fitted values by less than the tolerance (:func:`_step_is_negligible`), the fit
+        has converged and reports the iterate the pass evaluated, without another pass.
+        When successive steps shrink by a steady ratio along one direction (slow, linear
+        convergence: a non-canonical link, weakly identified terms), the next iterate is
+        extrapolated along it (Aitken's Δ² process on the step lengths).
         """
         model, design = self.model, self.design
         scale_known = self.fam.scale_known
@@ -295,23 +442,32 @@ class _Run:
         beta = None            # the iterate this pass evaluates; None: the starting means
         accepted = None        # (beta, state, deviance, λ) of the last accepted iterate
         lam = rho = None
-        if self.start is not None and not exact:  # a warm start: the previous fit's iterate
-            beta = np.array(self.start.beta, dtype=np.float64, copy=True)
-            lam = np.array(self.start.solution.lam, dtype=np.float64, copy=True)
-            self.scale_est = self.start.scale
+        foreign = False        # beta satisfies another fit's constraints (a warm start)
+        if self.warm is not None and not exact:
+            beta = np.array(self.warm.beta, dtype=np.float64, copy=True)
+            lam = None if self.warm.lam is None else np.array(self.warm.lam, dtype=np.float64)
+            self.scale_est = self.warm.scale
+            foreign = True
         halvings = 0
         converged = stuck = False
         nuisance_moved = False
+        plain_target = None    # the unextrapolated iterate, while an extrapolated one is tried
+        last_step = None       # (free step, its A-norm) of the last accepted step
         last: Solution | None = None
         notes: list[str] = []
+        halving_cause = None
         while True:
             t_pass = time.perf_counter()
             state = self.data_pass(beta, accepted[0] if accepted else None)
             if constraints is None:
                 constraints = Constraints(design, state.colsum, model.criterion,
-                                          self.setup.options.tuning.eliminate_levels)
+                                          self.tuning.eliminate_levels)
+                self.column_sums = False
+                if lam is None and self.start_smoothing and not exact:
+                    lam = _smoothing_by_label(self.start_smoothing, constraints)
             dev = state.scalars["deviance"]
             rows = int(state.scalars["rows"])
+            pdev = dev
             if beta is None:
                 history.append(PassRecord(self.passes, "start", dev, dev, [],
                                           time.perf_counter() - t_pass, rows))
@@ -319,8 +475,9 @@ class _Run:
                 # deviances of two passes compare only if the family's parameters were equal
                 comparable = not nuisance_moved
                 nuisance_moved = self._update_nuisance(state)
-                pdev = dev + _penalty_value(constraints, lam, beta)
-                record = PassRecord(self.passes, "step", dev, pdev, list(lam),
+                pdev = dev + _penalty_value(constraints, lam, beta) if lam is not None else dev
+                record = PassRecord(self.passes, "step", dev, pdev,
+                                    [] if lam is None else list(lam),
                                     time.perf_counter() - t_pass, rows,
                                     int(state.scalars["invalid_rows"]))
                 invalid = state.scalars["invalid_rows"] > 0
@@ -331,6 +488,11 @@ class _Run:
                 if (invalid or rise) and accepted is not None:
                     record.kind = "halved"
                     history.append(record)
+                    halving_cause = halving_cause or ("invalid" if invalid else "rise")
+                    last_step = None
+                    if plain_target is not None:   # the extrapolation overshot
+                        beta, plain_target = plain_target, None
+                        continue
                     if halvings < 25 and self.passes < model.max_iterations:
                         halvings += 1
                         beta = 0.5 * (beta + accepted[0])
@@ -345,13 +507,7 @@ class _Run:
                     beta, state, _, lam = accepted
                     break
                 history.append(record)
-                if (accepted is not None and comparable and abs(pdev - prev_pdev)
-                        <= model.tolerance * (abs(pdev) + 1e-3)
-                        and state.scalars["max_eta_change"] <= ETA_TOLERANCE):
-                    converged = True
-                    break
-                if self.passes >= model.max_iterations:
-                    break
+            plain_target = None
             halvings = 0
             anchor = beta if beta is not None else _intercept_only(design, self.start_shift)
             problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
@@ -359,42 +515,103 @@ class _Run:
                 constraints.check_identifiable(problem)
                 if lam is not None:  # warm start: from the previous fit's smoothing
                     rho = _rho_of(lam, problem, constraints)
-            sol = select(problem, model.criterion, constraints.fixed, start=rho)
+            sol = select(problem, model.criterion, self._fixed(constraints), start=rho)
             if constraints.shapes:
                 sol = constraints.shapes.apply(sol, problem)
             notes.extend(n for n in sol.notes if n not in notes)
             last = sol
             rho = _rho_of(sol.lam, problem, constraints)
+            self._freeze(rho, sol.lam, constraints)
+            new_beta = constraints.to_raw(sol.gamma)
+            self.scale_est = _scale_estimate(state, sol, scale_known, exact)
+            if exact:
+                history[-1].kind = "exact"
+                history[-1].smoothing = list(sol.lam)
+                beta, lam = new_beta, sol.lam
+                converged = True
+                break
+            step = None
+            if beta is not None and not foreign:
+                step = constraints.to_free(new_beta) - constraints.to_free(beta)
+                size = _weighted_size(problem, step)
+                if _step_is_negligible(size, state, sol, constraints, new_beta - beta,
+                                       pdev, model.tolerance, self.tuning.eta_tolerance):
+                    lam = sol.lam   # report the iterate this pass evaluated
+                    converged = True
+                    break
+            foreign = False
+            if beta is not None and self.passes >= model.max_iterations:
+                break
             # the iterate just evaluated becomes the anchor of halving; before the first
             # solve that is the intercept-only start (valid means, deviance not evaluated)
             accepted = (anchor, state if beta is not None else None,
                         dev if beta is not None else None, lam)
-            beta = constraints.to_raw(sol.gamma)
-            lam = sol.lam
-            self.scale_est = _scale_estimate(state, sol, scale_known, exact)
-            if exact:
-                history[-1].kind = "exact"
-                history[-1].smoothing = list(lam)
-                converged = True
-                break
+            target = new_beta
+            if step is not None and self.tuning.accelerate:
+                jump = _extrapolation(last_step, step, size)
+                if jump is not None:
+                    plain_target = new_beta
+                    target = constraints.to_raw(constraints.to_free(new_beta) + jump)
+                last_step = (step, size)
+            beta, lam = target, sol.lam
         if exact:
             solution = last
         else:
             solution = _final_solution(constraints, state, beta, lam, last)
         if not converged:
-            why = ("step halving found no better coefficients; the fit stopped at the last "
-                   "accepted iterate" if stuck else
-                   f"the relative change of the penalized deviance stayed above "
-                   f"{model.tolerance:g}")
-            msg = (f"PIRLS did not converge in {self.passes} data passes ({why}); the estimates "
-                   "and statistics are those of the reported iterate. Raise max_iterations or "
-                   "check the model.")
-            warnings.warn(ConvergenceWarning(msg), stacklevel=4)
+            warnings.warn(ConvergenceWarning(self._not_converged(stuck, halving_cause, history,
+                                                                 constraints)), stacklevel=4)
         fs = self._finish(state, beta, solution, constraints, converged, history, notes,
                           self.setup.dropped, exact)
+        fs.null_beta0 = self.null_beta0
         if self.binned is not None:
             fs.notes.extend(self.binned.notes())
         return fs
+
+    def _fixed(self, constraints: Constraints) -> list[float | None]:
+        """The smoothing parameters the selection must keep: given ones and frozen ones."""
+        return [f if f is not None else self.frozen.get(k)
+                for k, f in enumerate(constraints.fixed)]
+
+    def _freeze(self, rho: np.ndarray, lam: np.ndarray, constraints: Constraints) -> None:
+        """Hold at its bound a smoothing parameter that sat there in two selections in a
+        row: its term is a straight line (or gone), and λ wandering between 1e12 and 1e16
+        changes nothing but the selection's cost and the penalty's rounding."""
+        for k, f in enumerate(constraints.fixed):
+            if f is not None or k in self.frozen:
+                continue
+            if rho[k] >= RHO_BOUND - FREEZE_MARGIN:
+                self.at_bound[k] = self.at_bound.get(k, 0) + 1
+                if self.at_bound[k] >= 2:
+                    self.frozen[k] = float(lam[k])
+            else:
+                self.at_bound[k] = 0
+
+    def _not_converged(self, stuck: bool, cause, history, constraints) -> str:
+        """The non-convergence warning, naming the likely cause."""
+        model = self.model
+        if stuck:
+            why = ("step halving found no better coefficients; the fit stopped at the last "
+                   "accepted iterate")
+        else:
+            why = "the steps were still moving the fitted values"
+        hints = []
+        if cause == "invalid" or not self.link.multiplicative and self.fam.mean_floor is not None:
+            hints.append(f"the {self.link.name} link lets the {self.fam.name} mean reach the "
+                         "boundary of its range (0): steps were cut back there; the family's "
+                         f"default link ({self.fam.default_link}) keeps means inside it")
+        weak = [self.design.bases[constraints.penalty_owner[k]].label for k in self.frozen]
+        steps = [h.penalized_deviance for h in history if h.kind == "step"]
+        if len(steps) >= 4 and not hints:
+            hints.append("the penalized deviance fell by a nearly constant ratio each pass: "
+                         "weakly identified terms (nearly collinear with others, e.g. a "
+                         "multiplier that is almost constant, or a term repeating another)"
+                         + (f"; terms at their largest smoothing: {', '.join(sorted(set(weak)))}"
+                            if weak else ""))
+        return (f"PIRLS did not converge in {self.passes} data passes ({why}); the estimates "
+                "and statistics are those of the reported iterate. "
+                + ("Likely cause: " + "; ".join(hints) + ". " if hints else "")
+                + f"Raise max_iterations (now {model.max_iterations}) or check the model.")
 
     def _update_nuisance(self, state: PassState) -> bool:
         """One Newton step for a family's estimated extra parameter; True while it moves."""
@@ -441,7 +658,69 @@ class _Run:
         return fs
 
 
-ETA_TOLERANCE = 1e-6  # largest change of the linear predictor between the last two iterates
+FREEZE_MARGIN = 0.5   # log λ within this of its upper bound counts as at the bound
+MAX_JUMP = 10.0       # an extrapolated step is at most this many times the plain one
+
+
+def _smoothing_by_label(smoothing: dict, constraints: Constraints) -> np.ndarray | None:
+    """λ in the constraints' penalty order from λ by term label (a fit result's
+    ``smoothing``: a number, or a list for a term with several penalties); None when they
+    do not match."""
+    queues = {k: list(v) if isinstance(v, (list, tuple)) else [v]
+              for k, v in smoothing.items()}
+    out = []
+    for owner in constraints.penalty_owner:
+        label = constraints.design.bases[owner].label
+        if not queues.get(label):
+            return None
+        out.append(float(queues[label].pop(0)))
+    return np.array(out) if out and np.all(np.isfinite(out)) and min(out) > 0 else None
+
+
+def _weighted_size(problem, step: np.ndarray) -> float:
+    """ΔᵀAΔ = Σᵢ Wᵢ (xᵢΔ)² for a step Δ in free coordinates (eliminated ones last): how far
+    the step moves the fitted values, weighted by the working weights."""
+    k = problem.A.shape[0]
+    dk = step[:k]
+    total = float(dk @ problem.A @ dk)
+    el = problem.eliminated
+    if el is not None:
+        de = step[k:]
+        total += float(de @ (el.d * de)) + 2.0 * float(de @ (el.C @ dk))
+    return max(total, 0.0)
+
+
+def _step_is_negligible(size: float, state: PassState, sol: Solution,
+                        constraints: Constraints, raw_step: np.ndarray, pdev: float,
+                        tolerance: float, eta_tolerance: float) -> bool:
+    """True when the next PIRLS step changes nothing that matters: the fitted values move by
+    at most ``eta_tolerance`` (root mean square of the change of η, weighted by the working
+    weights), and the penalized deviance the step would gain, ½Δᵀ(A + S_λ)Δ, is at most
+    ``tolerance`` of it."""
+    total_weight = state.dense[0, 0]   # Σ W: the intercept's diagonal entry
+    if total_weight <= 0:
+        return False
+    rms = np.sqrt(size / total_weight)
+    gain = 0.5 * (size + constraints.penalty_value(sol.lam, raw_step))
+    return bool(rms <= eta_tolerance and gain <= tolerance * (abs(pdev) + 1e-3))
+
+
+def _extrapolation(last, step: np.ndarray, size: float) -> np.ndarray | None:
+    """Aitken's Δ² on the steps: when this step points the way the last one did and is
+    shorter by a ratio r (in the working-weight norm), the iterates converge linearly and
+    the rest of the way is about r/(1 − r) times this step. Returns that extra move (free
+    coordinates), or None when the steps do not show linear convergence."""
+    if last is None:
+        return None
+    prev, prev_size = last
+    if prev_size <= 0.0 or size <= 0.0:
+        return None
+    ratio = float(np.sqrt(size / prev_size))
+    norm = float(np.linalg.norm(prev) * np.linalg.norm(step))
+    cos = float(prev @ step) / norm if norm > 0 else 0.0
+    if cos < 0.95 or not 0.3 <= ratio < 1.0:
+        return None
+    return step * min(ratio / (1.0 - ratio), MAX_JUMP)
 
 
 def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:

@@ -117,6 +117,9 @@ class CyclicBasis(Basis):
         bs.encode_rows(self.knots, cols[self.spec.column], col0, idx, val, period=self.period,
                        wrap=self.n_raw)
 
+    def knots_along(self, column):
+        return np.unique(self.knots) if column == self.spec.column else None
+
     def penalties(self):
         ext = bs.curvature_penalty(self.knots, self.origin, self.origin + self.period)
         fold = bs.periodic_fold(self.n_raw)
