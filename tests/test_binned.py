@@ -53,10 +53,10 @@ def whole_number_model(family="poisson"):
     return tg.Model(response="amount", family="gaussian", terms=terms)
 
 
-def assert_same_fit(a, b, df, rtol):
+def assert_same_fit(a, b, df, rtol, pass_slack=0):
     # the smoothing-parameter optimizer stops within its own tolerance, and a term whose
     # λ runs to infinity has a flat criterion: compare what the fits say about the data
-    assert a.passes == b.passes
+    assert abs(a.passes - b.passes) <= pass_slack
     np.testing.assert_allclose(a.deviance, b.deviance, rtol=rtol)
     eta_a, eta_b = a.predict(df, output="link"), b.predict(df, output="link")
     np.testing.assert_allclose(eta_b, eta_a, rtol=0, atol=rtol * np.max(np.abs(eta_a)))
@@ -146,8 +146,9 @@ def test_scratch_copy_gives_the_streamed_fit_and_is_removed(tmp_path, monkeypatc
     assert os.listdir(folder) == []             # removed when the fit ended
     # the same rows; the copy holds each batch sorted by its largest term's codes and
     # recomputes ln(exposure), so sums differ in the last digits only: the smoothing search
-    # then stops at the same optimum to its own tolerance
-    assert_same_fit(streamed, cached, df, 1e-6)
+    # then stops at the same optimum to its own tolerance (a pass either side of the
+    # convergence threshold)
+    assert_same_fit(streamed, cached, df, 1e-6, pass_slack=1)
 
 
 def test_scratch_copy_is_removed_when_the_fit_fails(tmp_path):

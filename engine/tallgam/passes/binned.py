@@ -371,6 +371,28 @@ class BinnedDesign:
         return all(g.exact for g in self.grids.values())
 
 
+    # ------------------------------------------------------------------ pass interface
+    def read(self, cols: dict):
+        """A batch's rows as one block of codes (F × n)."""
+        codes = self.codes(cols)
+        yield slice(0, codes.shape[1]), codes
+
+    def pass_coefficients(self, beta: np.ndarray) -> np.ndarray:
+        """Each term's value per code, flat (Σ m): X̄_f β_f."""
+        out = np.empty(int(self.vec_off[-1]))
+        for f, fac in enumerate(self.factors):
+            b = beta[fac.start:fac.start + fac.n_raw]
+            lo = self.vec_off[f]
+            out[lo:lo + fac.m] = b if fac.level_term else self.matrix(f) @ b
+        return out
+
+    def predict(self, codes: np.ndarray, coef: np.ndarray, out: np.ndarray) -> None:
+        kernels.binned_predictor(codes, coef, self.vec_off, out)
+
+    def accumulator(self, threads: int, blas_width: int = 0) -> BinnedAccumulator:
+        return BinnedAccumulator(self, threads)
+
+
 def choose_passes(design: Design, profile: DataProfile, tuning: Tuning,
                   points: int | None) -> tuple[BinnedDesign | None, str]:
     """Binned or exact passes for a fit, and why. ``points`` None chooses: exact below
@@ -418,27 +440,6 @@ def _coding(binned: BinnedDesign) -> str:
     if rounded:
         parts.append("rounded: " + ", ".join(rounded))
     return "; ".join(parts) if parts else "level inputs only"
-
-    # ------------------------------------------------------------------ pass interface
-    def read(self, cols: dict):
-        """A batch's rows as one block of codes (F × n)."""
-        codes = self.codes(cols)
-        yield slice(0, codes.shape[1]), codes
-
-    def pass_coefficients(self, beta: np.ndarray) -> np.ndarray:
-        """Each term's value per code, flat (Σ m): X̄_f β_f."""
-        out = np.empty(int(self.vec_off[-1]))
-        for f, fac in enumerate(self.factors):
-            b = beta[fac.start:fac.start + fac.n_raw]
-            lo = self.vec_off[f]
-            out[lo:lo + fac.m] = b if fac.level_term else self.matrix(f) @ b
-        return out
-
-    def predict(self, codes: np.ndarray, coef: np.ndarray, out: np.ndarray) -> None:
-        kernels.binned_predictor(codes, coef, self.vec_off, out)
-
-    def accumulator(self, threads: int, blas_width: int = 0) -> BinnedAccumulator:
-        return BinnedAccumulator(self, threads)
 
 
 def _no_unknown(codes: np.ndarray, column: str) -> None:

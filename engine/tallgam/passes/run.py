@@ -22,7 +22,7 @@ from tallgam.passes.design import Design, batch_columns
 from tallgam.passes.state import PassState
 from tallgam.progress import Event
 
-LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
+LOGLIK_STEP = 0.001   # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
 
 
 @dataclass

@@ -382,6 +382,7 @@ class _Run:
         if warm is not None and warm.null_beta0 is not None:
             self.null_beta0 = warm.null_beta0
         self.scale_est = 1.0
+        self.pass_scale = 1.0
         self.passes = 0
         self.column_sums = True
         self.extra_records: list[PassRecord] = []
@@ -402,6 +403,7 @@ class _Run:
 
     def data_pass(self, beta, beta_prev=None) -> PassState:
         self.passes += 1
+        self.pass_scale = self.scale_est  # the scale this pass evaluates the density at
         state = self.runner.working(self.plan(beta, beta_prev), f"{self.name} {self.passes}",
                                     self.rows)
         self.null_beta0 += _null_step(state)
@@ -423,16 +425,15 @@ class _Run:
         Every pass evaluates one iterate. A step is *worse* when it puts a mean outside
         the family's range (e.g. a negative Poisson mean under the identity link) or raises
         the penalized deviance at the current λ; a worse step is halved towards the last
-        accepted iterate (an extrapolated step first falls back to the plain one). If
+        accepted iterate (an accelerated step first falls back to the plain one). If
         halving cannot find a better point, the fit stops at the last accepted iterate and
         says it did not converge.
 
         After each pass the working model gives the next iterate; when that step would move
         the fitted values by less than the tolerance (:func:`_step_is_negligible`), the fit
         has converged and reports the iterate the pass evaluated, without another pass.
-        When successive steps shrink by a steady ratio along one direction (slow, linear
-        convergence: a non-canonical link, weakly identified terms), the next iterate is
-        extrapolated along it (Aitken's Δ² process on the step lengths).
+        When successive steps shrink slowly (linear convergence: a non-canonical link,
+        weakly identified terms), the next iterate is accelerated (:class:`_Anderson`).
         """
         model, design = self.model, self.design
         scale_known = self.fam.scale_known
@@ -451,8 +452,8 @@ class _Run:
         halvings = 0
         converged = stuck = False
         nuisance_moved = False
-        plain_target = None    # the unextrapolated iterate, while an extrapolated one is tried
-        last_step = None       # (free step, its A-norm) of the last accepted step
+        plain_target = None    # the plain iterate, while an accelerated one is tried
+        mixer = _Anderson()    # acceleration of slow, linearly converging steps
         last: Solution | None = None
         notes: list[str] = []
         halving_cause = None
@@ -489,8 +490,8 @@ class _Run:
                     record.kind = "halved"
                     history.append(record)
                     halving_cause = halving_cause or ("invalid" if invalid else "rise")
-                    last_step = None
-                    if plain_target is not None:   # the extrapolation overshot
+                    mixer.reset()
+                    if plain_target is not None:   # the acceleration overshot
                         beta, plain_target = plain_target, None
                         continue
                     if halvings < 25 and self.passes < model.max_iterations:
@@ -536,8 +537,7 @@ class _Run:
                 size = _weighted_size(problem, step)
                 if _step_is_negligible(size, state, sol, constraints, new_beta - beta,
                                        pdev, model.tolerance, self.tuning.eta_tolerance):
-                    lam = sol.lam   # report the iterate this pass evaluated
-                    converged = True
+                    converged = True   # report the iterate this pass evaluated, its λ
                     break
             foreign = False
             if beta is not None and self.passes >= model.max_iterations:
@@ -548,11 +548,10 @@ class _Run:
                         dev if beta is not None else None, lam)
             target = new_beta
             if step is not None and self.tuning.accelerate:
-                jump = _extrapolation(last_step, step, size)
-                if jump is not None:
+                mixed = mixer.next(constraints.to_free(beta), step, problem)
+                if mixed is not None:
                     plain_target = new_beta
-                    target = constraints.to_raw(constraints.to_free(new_beta) + jump)
-                last_step = (step, size)
+                    target = constraints.to_raw(mixed)
             beta, lam = target, sol.lam
         if exact:
             solution = last
@@ -643,7 +642,7 @@ class _Run:
             scale = deviance / max(n - edf_total, 1.0)
         else:
             scale = sc["pearson"] / max(n - edf_total, 1.0)
-        loglik = fam.final_loglik(sc, deviance, scale, self.scale_est, LOGLIK_STEP)
+        loglik = fam.final_loglik(sc, deviance, scale, self.pass_scale, LOGLIK_STEP)
         if loglik is None:
             loglik = self.loglik_pass(beta, scale)
         sc["deviance"] = deviance
@@ -659,7 +658,6 @@ class _Run:
 
 
 FREEZE_MARGIN = 0.5   # log λ within this of its upper bound counts as at the bound
-MAX_JUMP = 10.0       # an extrapolated step is at most this many times the plain one
 
 
 def _smoothing_by_label(smoothing: dict, constraints: Constraints) -> np.ndarray | None:
@@ -705,22 +703,60 @@ def _step_is_negligible(size: float, state: PassState, sol: Solution,
     return bool(rms <= eta_tolerance and gain <= tolerance * (abs(pdev) + 1e-3))
 
 
-def _extrapolation(last, step: np.ndarray, size: float) -> np.ndarray | None:
-    """Aitken's Δ² on the steps: when this step points the way the last one did and is
-    shorter by a ratio r (in the working-weight norm), the iterates converge linearly and
-    the rest of the way is about r/(1 − r) times this step. Returns that extra move (free
-    coordinates), or None when the steps do not show linear convergence."""
-    if last is None:
-        return None
-    prev, prev_size = last
-    if prev_size <= 0.0 or size <= 0.0:
-        return None
-    ratio = float(np.sqrt(size / prev_size))
-    norm = float(np.linalg.norm(prev) * np.linalg.norm(step))
-    cos = float(prev @ step) / norm if norm > 0 else 0.0
-    if cos < 0.95 or not 0.3 <= ratio < 1.0:
-        return None
-    return step * min(ratio / (1.0 - ratio), MAX_JUMP)
+class _Anderson:
+    """Anderson acceleration of the PIRLS map x ↦ g(x) (Anderson 1965; Walker & Ni 2011,
+    SIAM J. Numer. Anal. 49:1715): from the last few iterates and their steps fₖ = g(xₖ) − xₖ,
+    the next iterate is g(xₖ) − (ΔX + ΔF)γ with γ minimising ‖fₖ − ΔFγ‖ in the working-
+    weight norm. Used once two plain steps in a row have shrunk slowly (each by a ratio of
+    at least ``SLOW``: a non-canonical link, weakly identified terms), where PIRLS
+    converges linearly; a fit that converges fast is left alone."""
+
+    MEMORY = 4
+    SLOW = 0.5
+
+    def __init__(self):
+        self.xs: list[np.ndarray] = []
+        self.fs: list[np.ndarray] = []
+        self.active = False
+        self.slow = 0
+
+    def reset(self) -> None:
+        self.xs, self.fs, self.active, self.slow = [], [], False, 0
+
+    def next(self, x: np.ndarray, f: np.ndarray, problem) -> np.ndarray | None:
+        """The accelerated iterate after evaluating ``x`` with plain step ``f`` (free
+        coordinates), or None to take the plain one."""
+        if self.fs and len(self.fs[-1]) != len(f):
+            self.reset()
+        self.xs.append(x)
+        self.fs.append(f)
+        del self.xs[:-self.MEMORY - 1], self.fs[:-self.MEMORY - 1]
+        if len(self.fs) < 2:
+            return None
+        size = _weighted_size(problem, f)
+        prev = _weighted_size(problem, self.fs[-2])
+        if prev <= 0.0 or size <= 0.0:
+            return None
+        self.slow = self.slow + 1 if np.sqrt(size / prev) >= self.SLOW else 0
+        self.active = self.active or self.slow >= 2
+        if not self.active:
+            return None
+        dF = np.array([b - a for a, b in zip(self.fs[:-1], self.fs[1:])]).T
+        dX = np.array([b - a for a, b in zip(self.xs[:-1], self.xs[1:])]).T
+        gram = np.array([[_weighted_inner(problem, a, b) for b in dF.T] for a in dF.T])
+        rhs = np.array([_weighted_inner(problem, a, f) for a in dF.T])
+        ridge = 1e-10 * max(np.trace(gram), 1e-300)
+        try:
+            gamma = np.linalg.solve(gram + ridge * np.eye(len(rhs)), rhs)
+        except np.linalg.LinAlgError:
+            return None
+        return x + f - (dX + dF) @ gamma
+
+
+def _weighted_inner(problem, a: np.ndarray, b: np.ndarray) -> float:
+    """aᵀAb in free coordinates (eliminated ones last), the inner product of
+    :func:`_weighted_size`."""
+    return 0.25 * (_weighted_size(problem, a + b) - _weighted_size(problem, a - b))
 
 
 def _final_solution(constraints, state, beta, lam, last: Solution) -> Solution:
@@ -750,12 +786,14 @@ def _penalty_value(constraints: Constraints, lam, beta: np.ndarray) -> float:
 
 
 def _scale_estimate(state, sol, scale_known, exact) -> float:
+    """φ at the next iterate, for the next pass: its Pearson statistic as the working model
+    predicts it (the working residual sum of squares at the new coefficients; exact for
+    the gaussian identity fit, and otherwise off by the square of the step), over n − EDF."""
     if scale_known:
         return 1.0
     n = state.scalars["rows"]
     edf = float(np.sum(sol.edf))
-    stat = sol.deviance if exact else state.scalars["pearson"]
-    return max(stat / max(n - edf, 1.0), 1e-300)
+    return max(sol.deviance / max(n - edf, 1.0), 1e-300)
 
 
 def _intercept_only(design: Design, value: float) -> np.ndarray:
