@@ -225,16 +225,17 @@ class BinnedDesign:
         col_codes = {key: g.codes(cols[key[0]]) for key, g in self.grids.items()}
         f = 0
         for b in self.design.dense_terms:
-            code = np.zeros(n, dtype=np.int64)
+            code = None
             for c, kind in self._inputs(b):
                 if kind == "numeric":
                     key = self._grid_of[(b.label, c)]
-                    code = code * len(self.grids[key].values) + col_codes[key]
+                    size, part = len(self.grids[key].values), col_codes[key]
                 else:
-                    lv = b.input_codes(cols, c)
-                    _no_unknown(lv, c)
-                    code = code * len(b.level_sets()[c]) + lv
-            out[f] = code
+                    part = b.input_codes(cols, c)
+                    _no_unknown(part, c)
+                    size = len(b.level_sets()[c])
+                code = part if code is None else code.astype(np.int64) * size + part
+            out[f] = 0 if code is None else code
             f += 1
         for b in self.design.level_terms:
             lv = b.codes(cols)

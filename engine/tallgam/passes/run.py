@@ -14,7 +14,8 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from tallgam.data.inputs import WC, Inputs, O, W, Y
+from tallgam.data.inputs import WC, Inputs, O, W, Y, sample_rows
+from tallgam.data.profile import histogram_scan, profile_scan
 from tallgam.data.sources import Source
 from tallgam.errors import FitError
 from tallgam.families.fused import FUSED_SUMS
@@ -63,10 +64,22 @@ class LocalPasses:
     there in later passes instead of the source; :meth:`close` removes the folder."""
 
     def __init__(self, source: Source, callback=None, scratch_policy=None):
+        callback = callback or _quiet
         self.source = source
         self.callback = callback
         self.policy = scratch_policy
         self.scratch = None
+
+    # the profile's scans and the sample of a sample start (the cluster runner does the same
+    # on its workers)
+    def profile_sums(self, fields, rules, where):
+        return profile_scan(self.source, fields, rules, where)
+
+    def histogram_sums(self, profile, fields, weight_expr, where):
+        return histogram_scan(self.source, profile, fields, weight_expr, where)
+
+    def sample(self, inputs, share: float):
+        return sample_rows(self.source, inputs, share)
 
     def _scratch(self, plan: PassPlan, rows: int | None):
         if plan.binned is None or self.policy is None:
@@ -194,8 +207,8 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
             fitted = start
             base = plan.start_shift
         elif beta is None:         # the family's starting means
-            mu = _start_mu(fam, link, y, w, plan.y_mean)
-            fitted = link.link(mu) - o
+            with np.errstate(all="ignore"):
+                fitted = link.link(_start_mu(fam, link, y, w, plan.y_mean)) - o
             base = plan.start_shift
         else:
             fitted = np.zeros(m)
@@ -204,7 +217,7 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
                 change = np.zeros(m)
                 layout.predict(block, step, change)
                 extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
-        if fused is not None and not (beta is None and start is None):
+        if fused is not None:
             wz, r = np.empty(m), np.empty(m)
             sums = dict(zip(FUSED_SUMS, fused(fitted, o, y, w, plan.null_beta0, plan.y_mean,
                                               scales, wz, r)))
@@ -213,6 +226,7 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
                 raise _outside_range(link, fam, int(bad), task)
             if base is not None:   # r is measured from the intercept-only anchor
                 r += fitted - base
+                sums["resid_ss"] = float(np.dot(wz * r, r))
                 sums["invalid_rows"] = 0.0
             if not fam.estimates_nuisance or beta is None:
                 sums.pop("nuisance_score")

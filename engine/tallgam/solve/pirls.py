@@ -19,6 +19,7 @@ from dataclasses import dataclass, field, replace
 
 import numba
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from tallgam.data.inputs import (
     WC,
@@ -26,9 +27,8 @@ from tallgam.data.inputs import (
     complete_rows_condition,
     model_inputs,
     resolved_expressions,
-    sample_rows,
 )
-from tallgam.data.profile import DataProfile, add_value_histograms, run_profile
+from tallgam.data.profile import DataProfile
 from tallgam.data.scratch import RowValues, ScratchPolicy
 from tallgam.data.sources import Source, open_source
 from tallgam.errors import ConvergenceWarning, FitError, SpecError, TallgamWarning
@@ -96,30 +96,28 @@ def fit_model(model, data, options: RunOptions, start=None) -> FitState:
         numba.set_num_threads(min(options.threads, numba.config.NUMBA_NUM_THREADS))
     t0 = time.perf_counter()
     runner = None
+    blas = threadpool_limits(options.tuning.blas_threads or None, user_api="blas")
     try:
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            setup = prepare(model, source, options, callback)
             if options.cluster is not None:  # imported only here: the local path never loads dask
                 from tallgam.passes.cluster import ClusterPasses
 
                 runner = ClusterPasses.open(options.cluster, data, source, callback,
                                             threads=options.threads,
-                                            min_rows=options.tuning.partition_min_rows)
+                                            min_rows=options.tuning.partition_min_rows,
+                                            scratch=options.scratch is not False)
             else:
-                policy = None
-                if setup.binned is not None and options.scratch is not False:
-                    folder = options.scratch if isinstance(options.scratch, str) else None
-                    policy = ScratchPolicy(folder=folder)
-                runner = LocalPasses(source, callback, scratch_policy=policy)
+                folder = options.scratch if isinstance(options.scratch, str) else None
+                runner = LocalPasses(source, callback, scratch_policy=(
+                    None if options.scratch is False else ScratchPolicy(folder=folder)))
+            setup = prepare(model, source, options, callback, runner)
             begin = _start_of(start, setup) if start is not None else {}
             if model.family.profiled() is not None:
                 fs = _profile_family_parameter(setup, runner, begin)
             else:
                 family = begin.pop("family", model.family)
-                warm = None
-                if not begin and options.cluster is None:
-                    warm = _sample_start(setup, family, source)
+                warm = None if begin else _sample_start(setup, family, runner)
                 fs = _Run(setup, family, runner, warm=warm, **begin).iterate()
                 if warm is not None:
                     fs.extra_statistics["sample"] = warm.report
@@ -138,6 +136,7 @@ def fit_model(model, data, options: RunOptions, start=None) -> FitState:
         fs.seconds = time.perf_counter() - t0
         callback(Event("end", "done"))
     finally:
+        blas.restore_original_limits()
         numba.set_num_threads(old_threads)
         if runner is not None:
             runner.close()
@@ -174,7 +173,7 @@ def _start_of(previous, setup: Setup) -> dict:
     return begin
 
 
-def _sample_start(setup: Setup, family, source: Source) -> Warm | None:
+def _sample_start(setup: Setup, family, runner) -> Warm | None:
     """PIRLS on a sample of the rows, held in memory, as the start of the full passes (None
     when the data are too small for a sample to pay). The full passes then go on from
     there to the full-data optimum; the sample only saves passes over the data."""
@@ -185,13 +184,12 @@ def _sample_start(setup: Setup, family, source: Source) -> Warm | None:
         return None
     share = size / n
     setup.callback(Event("start", "sample"))
-    table = sample_rows(source, setup.inputs, share)
+    table = runner.sample(setup.inputs, share)
     setup.callback(Event("end", "sample", rows=table.num_rows))
     if table.num_rows < tuning.sample_min_rows // 2:
         return None
     sample = open_source(table, threads=setup.options.threads)
-    runner = LocalPasses(sample, setup.callback,
-                         scratch_policy=ScratchPolicy(memory=True) if setup.binned else None)
+    runner = LocalPasses(sample, setup.callback, scratch_policy=ScratchPolicy(memory=True))
     sub = replace(setup, inputs=setup.inputs.over_selected(), pass_rows=table.num_rows)
     try:
         with warnings.catch_warnings():
@@ -233,26 +231,28 @@ class Setup:
         return self.pass_rows if self.pass_rows is not None else self.profile.rows
 
 
-def prepare(model, source: Source, options: RunOptions, callback) -> Setup:
-    """The profile pass (with NULL handling and checks) and the terms' bases."""
+def prepare(model, source: Source, options: RunOptions, callback, runner=None) -> Setup:
+    """The profile pass (with NULL handling and checks) and the terms' bases. ``runner``
+    reads the data for the profile (:class:`~tallgam.passes.run.LocalPasses` over
+    ``source`` when None; a cluster runner profiles the parts on its workers)."""
+    runner = runner or LocalPasses(source)
     inputs = model_inputs(model, source, model.terms)
+    fields, rules = inputs.profile_fields, inputs.rules
     callback(Event("start", "profile"))
-    profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where,
-                          histograms=False)
+    profile = runner.profile_sums(fields, rules, model.where).profile(fields, rules)
     dropped = 0
     where = model.where
     if model.missing == "drop" and profile.missing():
-        keep = complete_rows_condition(inputs.profile_fields)
+        keep = complete_rows_condition(fields)
         where = f"({model.where}) AND ({keep})" if model.where else keep
         rows_before = profile.rows
-        profile = run_profile(source, inputs.profile_fields, inputs.rules, where,
-                              histograms=False)
+        profile = runner.profile_sums(fields, rules, where).profile(fields, rules)
         dropped = rows_before - profile.rows
     inputs.where = where
     check_profile(profile, source, model)
-    add_value_histograms(source, profile, inputs.profile_fields,
-                         inputs.select_expr(WC) if inputs.has_cweights else None, where,
-                         "exposure" if model.exposure else "weights")
+    weight = inputs.select_expr(WC) if inputs.has_cweights else None
+    runner.histogram_sums(profile, fields, weight, where).apply(
+        profile, "exposure" if model.exposure else "weights")
     callback(Event("end", "profile", rows=profile.rows))
     if dropped:
         warnings.warn(TallgamWarning(f"{dropped} row(s) with missing or non-finite values were "
