@@ -220,3 +220,54 @@ def test_grid_codes_equal_a_binary_search():
         grid = discrete.ColumnGrid("x", values, False, 0.0)
         x = np.concatenate([rng.lognormal(0, 1.2, 20_000), values, grid.mid, [-1.0, 1e9]])
         np.testing.assert_array_equal(grid.codes(x), np.searchsorted(grid.mid, x))
+
+
+def test_compact_scratch_copy_gives_the_blocks_of_the_streamed_pass(tmp_path):
+    # the copy keeps codes in their narrowest type, the response and weights exactly, the
+    # exposure, recomputes ln(exposure), and reorders each batch by its largest term's
+    # codes; a pass over it equals the streamed pass to rounding, every block
+    from tallgam.data.scratch import ScratchPolicy
+    from tallgam.data.scratch import prepare as prepare_scratch
+    from tallgam.data.sources import open_source
+    from tallgam.options import RunOptions
+    from tallgam.passes.run import PassPlan, working_pass
+    from tallgam.progress import make_callback
+    from tallgam.solve.pirls import prepare
+
+    df = whole_number_book(20_000)
+    df["density"] = np.random.default_rng(6).lognormal(4, 1, len(df))
+    model = tg.Model(response="claims", family="poisson", exposure="exposure",
+                     terms=whole_number_model("poisson").terms + (tg.spline("density"),))
+    source = open_source(df)
+    setup = prepare(model, source, RunOptions(binned=True), make_callback(False))
+    rng = np.random.default_rng(1)
+    beta = 0.02 * rng.standard_normal(setup.design.p)
+    beta[0] = -2.0
+    plan = PassPlan(inputs=setup.inputs, design=setup.design, family=model.family,
+                    link=model.link, beta=beta, beta_prev=0.9 * beta, start_shift=-2.0,
+                    null_beta0=-2.0, y_mean=setup.profile.role("response").mean,
+                    scale_est=1.0, batch_rows=7_000, binned=setup.binned,
+                    values=setup.values)
+    streamed = working_pass(source, plan)
+    scratch = prepare_scratch(None, ScratchPolicy(folder=str(tmp_path)), plan, len(df))
+    try:
+        written = working_pass(source, plan, scratch=scratch)
+        assert scratch.complete and scratch.rows == len(df)
+        read = working_pass(source, plan, scratch=scratch)
+        # bytes a row: each term's code in the narrowest unsigned type that holds it, one
+        # for the claim count, eight for the exposure, nothing for the offset
+        codes = sum(t.itemsize for _, t in scratch.codes)
+        assert scratch.size == len(df) * (codes + 1 + 8)
+        assert scratch.size / len(df) <= 24
+    finally:
+        scratch.remove()
+    for state in (written, read):
+        for name in ("dense", "cross", "diag", "rhs", "colsum"):
+            a, b = getattr(streamed, name), getattr(state, name)
+            np.testing.assert_allclose(b, a, rtol=0, atol=1e-10 * np.max(np.abs(a)),
+                                       err_msg=name)
+        for key in streamed.pairs:
+            np.testing.assert_allclose(state.pairs[key], streamed.pairs[key], rtol=0,
+                                       atol=1e-10 * np.max(np.abs(streamed.pairs[key])))
+        for key in ("deviance", "resid_ss", "weight", "loglik", "pearson"):
+            np.testing.assert_allclose(state.scalars[key], streamed.scalars[key], rtol=1e-10)

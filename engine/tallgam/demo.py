@@ -166,9 +166,6 @@ def severity_model(where: str | None = TRAIN):
                tg.categorical("region")])
 
 
-DISCRETIZE_ROWS = 5_000_000  # books of this size and over are fitted with discretize=True
-
-
 def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
              echo: Callable[[str], None] = lambda s: None) -> DemoResult:
     """Write the book; fit frequency (and a banded challenger) and severity on 2021–2023;
@@ -185,10 +182,8 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     glob = os.path.join(book_dir, "*.parquet")
     quoted = "'" + glob.replace("'", "''") + "'"
     holdout = tg.sql(f"SELECT * FROM read_parquet({quoted}) WHERE {HOLDOUT}")
+    # exact or binned passes are chosen by each fit (binned="auto"; its notes say which)
     options = {"progress": progress}
-    if rows >= DISCRETIZE_ROWS:  # large books: passes on coded rows (docs/performance.md)
-        options["discretize"] = True
-        echo("large book: covariates coded into tables of distinct values (discretize=True)")
     echo(f"fitting the claim-frequency model on {TRAIN} (poisson, log link, exposure offset)")
     freq = frequency_model().fit(glob, **options)
     freq.save(os.path.join(folder, "frequency.json"))

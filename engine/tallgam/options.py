@@ -47,7 +47,7 @@ class Tuning:
         Exact passes form XᵀWX of the dense group with BLAS on rows made dense when the
         group has at most this many times as many columns as a row has non-zeros (0:
         never; the sparse kernel then does it).
-    eta_tolerance : float, default 1e-7
+    eta_tolerance : float, default 1e-6
         PIRLS has converged when its next step would move the fitted values (the linear
         predictor) by at most this, as a root mean square weighted by the working weights
         (and gain at most the model's ``tolerance`` of the penalized deviance).
@@ -81,7 +81,7 @@ class Tuning:
     partition_min_rows: int = 250_000
     tables_memory: str = "1GB"
     blas_width: int = 4
-    eta_tolerance: float = 1e-7
+    eta_tolerance: float = 1e-6
     accelerate: bool = True
     binned_from_rows: int = 500_000
     bin_move_share: float = 0.25

@@ -46,7 +46,7 @@ MODEL_KEYS: dict[str, tuple] = {
 }
 RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
-    "binned": (bool, int), "scratch": (str, bool),
+    "binned": (bool, int, str), "scratch": (str, bool), "start": (str,),
 }
 
 
@@ -60,8 +60,9 @@ class RunSpec:
     threads: int | None = None
     output: str | None = None
     path: str | None = None
-    binned: bool | int = False
+    binned: bool | int | str = "auto"
     scratch: str | bool | None = None
+    start: str | None = None
     extra: dict = field(default_factory=dict)
 
 
@@ -149,9 +150,12 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
     scratch = raw.get("scratch")
     if isinstance(scratch, str):
         scratch = _resolve(scratch, base)
+    start = raw.get("start")
+    if isinstance(start, str):
+        start = _resolve(start, base)
     return RunSpec(model=model, data=data, batch_rows=int(raw.get("batch_rows", 1_000_000)),
                    threads=raw.get("threads"), output=raw.get("output"), path=path,
-                   binned=raw.get("binned", False), scratch=scratch)
+                   binned=raw.get("binned", "auto"), scratch=scratch, start=start)
 
 
 def _resolve(p: str, base: str) -> str:

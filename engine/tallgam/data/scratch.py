@@ -124,7 +124,7 @@ def prepare(current: Scratch | None, policy: ScratchPolicy, plan, rows: int | No
     if not policy.allows(size):
         return None
     return Scratch(policy.folder, key, plan.values, [(f, types[f]) for f in kept],
-                   len(dd.factors), dd.code_dtype, sort_key=dd.sort_key)
+                   len(dd.factors), dd.code_dtype)
 
 
 class StoredRows:
@@ -141,13 +141,12 @@ class Scratch(StoredRows):
     """Flat binary files of coded rows: ``c<f>`` per stored term, and the row values."""
 
     def __init__(self, folder: str | None, key, values: RowValues, codes: list,
-                 n_codes: int, code_dtype, sort_key: int | None = None):
+                 n_codes: int, code_dtype):
         self.key = key
         self.values = values
         self.codes = codes                     # [(term index, stored type)]
         self.n_codes = n_codes
         self.code_dtype = np.dtype(code_dtype)
-        self.sort_key = sort_key
         self.path = tempfile.mkdtemp(prefix="tallgam-scratch-", dir=folder)
         self.rows = 0
         self.complete = False
@@ -160,16 +159,13 @@ class Scratch(StoredRows):
         return sum(os.path.getsize(os.path.join(self.path, f)) for f in os.listdir(self.path))
 
     def append(self, codes: np.ndarray, y, w, o, wc) -> None:
-        """Add a batch: ``codes`` (F × n) and its row values (float64)."""
-        order = None
-        if self.sort_key is not None and len(y) > 1:
-            order = np.argsort(codes[self.sort_key], kind="stable")
+        """Add a batch: ``codes`` (F × n) and its row values (float64), in the order the
+        layout keeps them (:meth:`~tallgam.passes.binned.BinnedDesign.order`)."""
         given = {"y": y, "w": w, "o": o, "wc": wc}
         for f, t in self.codes:
-            c = codes[f] if order is None else codes[f][order]
-            c.astype(t).tofile(self._files[f"c{f}"])
+            codes[f].astype(t).tofile(self._files[f"c{f}"])
         for name, t in self.values.types.items():
-            v = given[name] if order is None else given[name][order]
+            v = given[name]
             stored = v.astype(t)
             if t.kind != "f" and not np.array_equal(stored, v):
                 raise DataError(f"the {name_of(name)} has values that its profile did not "

@@ -58,25 +58,25 @@ class ColumnGrid:
     def __post_init__(self):
         v = self.values
         self.mid = 0.5 * (v[1:] + v[:-1])
-        buckets = 8 * len(v)
+        buckets = 64 * len(v)
         span = float(v[-1] - v[0]) or 1.0
         self.scale = buckets / span
         starts = v[0] + np.arange(buckets) / self.scale
         self.lut = np.searchsorted(self.mid, starts).astype(np.int64)
 
     def codes(self, x: np.ndarray) -> np.ndarray:
+        x = np.ascontiguousarray(x, dtype=np.float64)
         if self.exact:
-            c = x - self.values[0]
-            if c.size and (c.min() < 0 or c.max() >= len(self.values)):
-                bad = int(np.count_nonzero((c < 0) | (c >= len(self.values))))
+            out = np.empty(len(x), dtype=np.int32)
+            bad = kernels.whole_codes(x, float(self.values[0]), len(self.values), out)
+            if bad:
                 raise DataError(f"column {self.column!r} has {bad} value(s) in this batch "
                                 f"outside the range its profile found ({self.values[0]:g} to "
                                 f"{self.values[-1]:g}); the data changed during the fit: "
                                 "fit again on a stable copy")
-            return c.astype(np.int32)
+            return out
         out = np.empty(len(x), dtype=np.int32)
-        kernels.grid_codes(np.ascontiguousarray(x, dtype=np.float64), self.mid,
-                           float(self.values[0]), self.scale, self.lut, out)
+        kernels.grid_codes(x, self.mid, float(self.values[0]), self.scale, self.lut, out)
         return out
 
     def describe(self) -> str:
@@ -377,6 +377,17 @@ class BinnedDesign:
         """A batch's rows as one block of codes (F × n)."""
         codes = self.codes(cols)
         yield slice(0, codes.shape[1]), codes
+
+    def order(self, codes: np.ndarray) -> np.ndarray | None:
+        """The order in which to keep a block's rows (by the largest term's codes, so that
+        its pairs meet their table rows one after another), or None."""
+        if self.sort_key is None or codes.shape[1] < 2:
+            return None
+        return np.argsort(codes[self.sort_key], kind="stable")
+
+    def reordered(self, codes: np.ndarray, order: np.ndarray) -> np.ndarray:
+        """A block's codes with its rows in ``order``."""
+        return np.take(codes, order, axis=1)
 
     def pass_coefficients(self, beta: np.ndarray) -> np.ndarray:
         """Each term's value per code, flat (Σ m): X̄_f β_f."""

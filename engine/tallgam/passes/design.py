@@ -92,6 +92,10 @@ class Design:
         """A batch's rows in the blocks the kernels take."""
         return self.blocks(cols)
 
+    def order(self, enc: Encoded) -> None:
+        """Rows keep their order (see :meth:`tallgam.passes.binned.BinnedDesign.order`)."""
+        return None
+
     def pass_coefficients(self, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """β split for the kernels: dense group, level group."""
         return (np.ascontiguousarray(beta[:self.pd]), np.ascontiguousarray(beta[self.pd:]))

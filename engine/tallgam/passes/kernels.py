@@ -309,3 +309,20 @@ def grid_codes(x, mid, lo, scale, lut, out):
         while k > 0 and mid[k - 1] >= v:
             k -= 1
         out[i] = k
+
+
+@numba.njit(cache=True, parallel=True)
+def whole_codes(x, lo, m, out):
+    """out[i] = x[i] − lo for whole-number values in [lo, lo + m); returns how many values
+    fall outside (their codes are 0)."""
+    n = x.shape[0]
+    bad = 0
+    for i in numba.prange(n):
+        c = x[i] - lo
+        if c >= 0.0 and c < m:
+            out[i] = int(c)
+        else:
+            out[i] = 0
+            bad += 1
+    return bad
+

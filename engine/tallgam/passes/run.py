@@ -139,7 +139,13 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
                 last = (y_all[sl], _part(w_all, sl), _part(o_all, sl), _part(wc_all, sl),
                         block, None, _part(start_all, sl))
                 if scratch is not None:
-                    scratch.append(block, *last[:4])
+                    order = layout.order(block)  # rows as the stored copy keeps them
+                    if order is not None:
+                        y, w, o, wc, _, _, start = last
+                        last = (y[order], _part(w, order), _part(o, order), _part(wc, order),
+                                layout.reordered(block, order), None,
+                                _part(start, order))
+                    scratch.append(last[4], *last[:4])
             if last is not None:
                 yield last[:5] + (done, last[6])
         if scratch is not None:
@@ -158,9 +164,9 @@ class StartModel:
     beta: np.ndarray
 
     def linear_predictor(self, cols: dict) -> np.ndarray:
-        """X·β (n,) of a batch's columns (values outside the previous fit's ranges are
-        clamped, unseen levels count as the base level, as in scoring)."""
-        n = len(cols[Y])
+        """X·β (n,) of a batch's columns (values outside the fit's ranges are clamped,
+        unseen levels count as the base level, as in scoring)."""
+        n = len(next(iter(cols.values()))) if cols else 0
         out = np.zeros(n)
         coef = self.design.pass_coefficients(self.beta)
         for sl, enc in self.design.read(cols):
@@ -223,7 +229,7 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
                                               scales, wz, r)))
             bad = sums.pop("bad")
             if bad:
-                raise _outside_range(link, fam, int(bad), task)
+                sums = _drop_unusable(wz, r, sums, bad, beta is None, link, fam, task)
             if base is not None:   # r is measured from the intercept-only anchor
                 r += fitted - base
                 sums["resid_ss"] = float(np.dot(wz * r, r))
@@ -246,6 +252,23 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
 _NO_ROWS = np.zeros(0)
 
 
+def _drop_unusable(wz, r, sums: dict, bad: int, start: bool, link, fam, task: str) -> dict:
+    """Rows whose working weight or residual is not finite: at the start an error (the link
+    cannot start there); at an iterate, rows outside the mean space that the driver will
+    halve the step for (they are left out of this pass's sums, which it discards)."""
+    if start:
+        raise _outside_range(link, fam, bad, task)
+    unusable = ~np.isfinite(wz * r)
+    wz[unusable] = 0.0
+    r[unusable] = 0.0
+    sums = dict(sums)
+    sums["invalid_rows"] = max(float(sums.get("invalid_rows", 0.0)), float(bad))
+    for key, value in sums.items():
+        if not np.isfinite(value):
+            sums[key] = 0.0
+    return sums
+
+
 def _working_numpy(plan, fam, link, fitted, o, y, w, base, scales, evaluated: bool,
                    task: str):
     """The working model of a block in numpy (the reference for the fused loops): working
@@ -266,8 +289,9 @@ def _working_numpy(plan, fam, link, fitted, o, y, w, base, scales, evaluated: bo
     r = (y - mu) / dmu
     if base is not None:
         r = r + (fitted - base)
-    if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
-        raise _outside_range(link, fam, int(np.sum(~np.isfinite(wz * r))), task)
+    bad = int(np.sum(~np.isfinite(wz * r)))
+    if bad:
+        sums = _drop_unusable(wz, r, sums, bad, not evaluated, link, fam, task)
     # the intercept-and-offset (null) model, one IRLS step per pass
     eta0 = o + plan.null_beta0
     mu0 = fam.clip_mu(link.inverse(eta0))

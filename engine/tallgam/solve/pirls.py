@@ -116,15 +116,16 @@ def fit_model(model, data, options: RunOptions, start=None) -> FitState:
             if model.family.profiled() is not None:
                 fs = _profile_family_parameter(setup, runner, begin)
             else:
+                if not begin:
+                    begin = _sample_start(setup, model.family, runner)
                 family = begin.pop("family", model.family)
-                warm = None if begin else _sample_start(setup, family, runner)
-                fs = _Run(setup, family, runner, warm=warm, **begin).iterate()
-                if warm is not None:
-                    fs.extra_statistics["sample"] = warm.report
+                report = begin.pop("report", None)
+                fs = _Run(setup, family, runner, **begin).iterate()
+                if report is not None:
+                    fs.extra_statistics["sample"] = report
                     fs.notes.append(
-                        f"started from a sample of {warm.report['rows']:,} rows "
-                        f"({100 * warm.report['share']:.1f}%, "
-                        f"{warm.report['passes']} passes in memory)")
+                        f"started from a sample of {report['rows']:,} rows "
+                        f"({100 * report['share']:.1f}%, {report['passes']} passes in memory)")
             fs.extra_statistics["passes_mode"] = setup.mode
             fs.notes.append(setup.mode_note)
             if start is not None:
@@ -163,7 +164,6 @@ def _start_of(previous, setup: Setup) -> dict:
     if differences:
         raise SpecError("start= must be a fit of the same model; the one given has "
                         + "; ".join(differences))
-    from tallgam.passes.design import Design
 
     begin = {"start": StartModel(Design(list(previous.bases)),
                                  np.asarray(previous.coefficients_raw, dtype=np.float64)),
@@ -173,38 +173,40 @@ def _start_of(previous, setup: Setup) -> dict:
     return begin
 
 
-def _sample_start(setup: Setup, family, runner) -> Warm | None:
-    """PIRLS on a sample of the rows, held in memory, as the start of the full passes (None
-    when the data are too small for a sample to pay). The full passes then go on from
-    there to the full-data optimum; the sample only saves passes over the data."""
+def _sample_start(setup: Setup, family, runner) -> dict:
+    """PIRLS on a sample of the rows, held in memory, as the start of the full passes: its
+    coefficients, smoothing and family parameters (a :class:`Warm` start). Empty when the
+    data are too small for a sample to pay. The full passes go on from there to the
+    full-data optimum; the sample only saves passes over the data."""
     tuning = setup.options.tuning
     n = setup.rows
     size = max(tuning.sample_share * n, tuning.sample_min_rows)
     if tuning.sample_share <= 0 or family.exact_with(setup.model.link) or size > 0.5 * n:
-        return None
+        return {}
     share = size / n
     setup.callback(Event("start", "sample"))
     table = runner.sample(setup.inputs, share)
     setup.callback(Event("end", "sample", rows=table.num_rows))
     if table.num_rows < tuning.sample_min_rows // 2:
-        return None
+        return {}
     sample = open_source(table, threads=setup.options.threads)
-    runner = LocalPasses(sample, setup.callback, scratch_policy=ScratchPolicy(memory=True))
+    local = LocalPasses(sample, setup.callback, scratch_policy=ScratchPolicy(memory=True))
     sub = replace(setup, inputs=setup.inputs.over_selected(), pass_rows=table.num_rows)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")   # a start: its own troubles show in the fit
             try:
-                fs = _Run(sub, family, runner, name="sample pass").iterate()
+                fs = _Run(sub, family, local, name="sample pass").iterate()
             except FitError:
-                return None
+                return {}
     finally:
-        runner.close()
+        local.close()
         sample.close()
-    report = {"rows": int(table.num_rows), "share": float(share), "passes": int(fs.passes),
-              "converged": bool(fs.converged)}
-    return Warm(np.array(fs.beta, copy=True), np.array(fs.solution.lam, copy=True), fs.scale,
-                fs.family if family.estimates_nuisance else None, fs.null_beta0, report)
+    warm = Warm(np.array(fs.beta, copy=True), np.array(fs.solution.lam, copy=True), fs.scale,
+                fs.family if family.estimates_nuisance else None, fs.null_beta0)
+    return {"warm": warm, "report": {"rows": int(table.num_rows), "share": float(share),
+                                     "passes": int(fs.passes),
+                                     "converged": bool(fs.converged)}}
 
 
 @dataclass
@@ -337,7 +339,6 @@ class Warm:
     scale: float
     family: object = None
     null_beta0: float | None = None
-    report: dict = field(default_factory=dict)
 
 
 def warm_of(fs: FitState) -> Warm:
@@ -386,8 +387,8 @@ class _Run:
         self.passes = 0
         self.column_sums = True
         self.extra_records: list[PassRecord] = []
-        self.frozen: dict[int, float] = {}     # penalty -> λ held at its upper bound
-        self.at_bound: dict[int, int] = {}     # penalty -> selections in a row at the bound
+        self.frozen: dict[int, float] = {}     # penalty -> λ held (effectively infinite)
+        self.at_bound: dict[int, int] = {}     # penalty -> selections in a row near-null
 
     def plan(self, beta, beta_prev=None) -> PassPlan:
         tuning = self.tuning
@@ -443,7 +444,7 @@ class _Run:
         beta = None            # the iterate this pass evaluates; None: the starting means
         accepted = None        # (beta, state, deviance, λ) of the last accepted iterate
         lam = rho = None
-        foreign = False        # beta satisfies another fit's constraints (a warm start)
+        foreign = False        # beta satisfies another fit's constraints (a sample's)
         if self.warm is not None and not exact:
             beta = np.array(self.warm.beta, dtype=np.float64, copy=True)
             lam = None if self.warm.lam is None else np.array(self.warm.lam, dtype=np.float64)
@@ -469,6 +470,16 @@ class _Run:
             dev = state.scalars["deviance"]
             rows = int(state.scalars["rows"])
             pdev = dev
+            if foreign and not dev <= state.scalars["null_deviance"]:
+                # the sample's fit is worse on the data than the intercept alone (the sample
+                # missed a region the data reach): start from the family's means instead
+                history.append(PassRecord(self.passes, "rejected", dev, dev, [],
+                                          time.perf_counter() - t_pass, rows))
+                notes.append("the fit to the sample fitted the data worse than the intercept "
+                             "alone; the passes started from the response instead")
+                beta = lam = None
+                foreign = False
+                continue
             if beta is None:
                 history.append(PassRecord(self.passes, "start", dev, dev, [],
                                           time.perf_counter() - t_pass, rows))
@@ -486,14 +497,21 @@ class _Run:
                 if accepted is not None and accepted[2] is not None:
                     prev_pdev = accepted[2] + _penalty_value(constraints, lam, accepted[0])
                 rise = comparable and pdev - prev_pdev > 1e-9 * abs(prev_pdev) + 1e-12
+                if plain_target is not None:
+                    # an accelerated iterate is judged by its next step (below), and may
+                    # raise the penalized deviance at one λ a little: under performance
+                    # iteration λ moves too, and it need not fall on the way to the joint
+                    # solution; a large rise falls back to the plain iterate
+                    rise = comparable and pdev - prev_pdev > ACCELERATED_RISE * abs(prev_pdev)
                 if (invalid or rise) and accepted is not None:
                     record.kind = "halved"
                     history.append(record)
                     halving_cause = halving_cause or ("invalid" if invalid else "rise")
-                    mixer.reset()
                     if plain_target is not None:   # the acceleration overshot
+                        mixer.reject()
                         beta, plain_target = plain_target, None
                         continue
+                    mixer.reset()
                     if halvings < 25 and self.passes < model.max_iterations:
                         halvings += 1
                         beta = 0.5 * (beta + accepted[0])
@@ -508,7 +526,6 @@ class _Run:
                     beta, state, _, lam = accepted
                     break
                 history.append(record)
-            plain_target = None
             halvings = 0
             anchor = beta if beta is not None else _intercept_only(design, self.start_shift)
             problem = constraints.problem(state, anchor, 1.0 if scale_known else None)
@@ -520,10 +537,18 @@ class _Run:
             if constraints.shapes:
                 sol = constraints.shapes.apply(sol, problem)
             notes.extend(n for n in sol.notes if n not in notes)
+            new_beta = constraints.to_raw(sol.gamma)
+            if plain_target is not None and not exact:
+                step = constraints.to_free(new_beta) - constraints.to_free(beta)
+                if _weighted_size(problem, step) > mixer.last_size(problem):
+                    history[-1].kind = "rejected"   # the acceleration did not help
+                    mixer.reject()
+                    beta, plain_target = plain_target, None
+                    continue
+            plain_target = None
             last = sol
             rho = _rho_of(sol.lam, problem, constraints)
-            self._freeze(rho, sol.lam, constraints)
-            new_beta = constraints.to_raw(sol.gamma)
+            self._freeze(sol, constraints)
             self.scale_est = _scale_estimate(state, sol, scale_known, exact)
             if exact:
                 history[-1].kind = "exact"
@@ -572,19 +597,18 @@ class _Run:
         return [f if f is not None else self.frozen.get(k)
                 for k, f in enumerate(constraints.fixed)]
 
-    def _freeze(self, rho: np.ndarray, lam: np.ndarray, constraints: Constraints) -> None:
-        """Hold at its bound a smoothing parameter that sat there in two selections in a
-        row: its term is a straight line (or gone), and λ wandering between 1e12 and 1e16
-        changes nothing but the selection's cost and the penalty's rounding."""
-        for k, f in enumerate(constraints.fixed):
-            if f is not None or k in self.frozen:
+    def _freeze(self, sol: Solution, constraints: Constraints) -> None:
+        """Hold a smoothing parameter that is effectively infinite: in two selections in a
+        row, the coefficients its penalty acts on carried less than ``FREEZE_EDF`` effective
+        degrees of freedom in all (the term is a straight line, or gone). Its criterion is
+        flat there, so λ wanders from pass to pass (1e8 one pass, 1e12 the next) without
+        changing the fit, and only keeps the fit from settling."""
+        for k, edf in enumerate(_penalized_edf(sol, constraints)):
+            if constraints.fixed[k] is not None or k in self.frozen:
                 continue
-            if rho[k] >= RHO_BOUND - FREEZE_MARGIN:
-                self.at_bound[k] = self.at_bound.get(k, 0) + 1
-                if self.at_bound[k] >= 2:
-                    self.frozen[k] = float(lam[k])
-            else:
-                self.at_bound[k] = 0
+            self.at_bound[k] = self.at_bound.get(k, 0) + 1 if edf < FREEZE_EDF else 0
+            if self.at_bound[k] >= 2:
+                self.frozen[k] = float(sol.lam[k])
 
     def _not_converged(self, stuck: bool, cause, history, constraints) -> str:
         """The non-convergence warning, naming the likely cause."""
@@ -657,7 +681,21 @@ class _Run:
         return fs
 
 
-FREEZE_MARGIN = 0.5   # log λ within this of its upper bound counts as at the bound
+ACCELERATED_RISE = 1e-6  # an accelerated iterate may raise the penalized deviance this much
+FREEZE_EDF = 1e-3     # a penalty whose coefficients carry less EDF is effectively infinite
+
+
+def _penalized_edf(sol: Solution, constraints: Constraints) -> list[float]:
+    """Per penalty, the effective degrees of freedom of the coefficients it acts on (its
+    range in free coordinates; all of an eliminated term's)."""
+    out = [0.0] * len(constraints.fixed)
+    for blk in constraints.blocks:
+        for j, m in enumerate(blk.matrices):
+            acts = np.flatnonzero(np.any(m != 0, axis=0)) + blk.sl.start
+            out[blk.first + j] = float(np.sum(sol.edf[acts]))
+    if constraints.eliminated is not None:
+        out[-1] = float(np.sum(sol.edf[constraints.free_slices[constraints.eliminated]]))
+    return out
 
 
 def _smoothing_by_label(smoothing: dict, constraints: Constraints) -> np.ndarray | None:
@@ -713,19 +751,34 @@ class _Anderson:
 
     MEMORY = 4
     SLOW = 0.5
+    REACH = 10.0   # the accelerated move beyond the plain step, at most this many of it
+    GIVE_UP = 2    # rejected accelerations after which a fit goes on without
 
     def __init__(self):
         self.xs: list[np.ndarray] = []
         self.fs: list[np.ndarray] = []
         self.active = False
         self.slow = 0
+        self.rejected = 0
 
     def reset(self) -> None:
         self.xs, self.fs, self.active, self.slow = [], [], False, 0
 
+    def reject(self) -> None:
+        """An accelerated iterate did worse than the plain one: start over; after
+        ``GIVE_UP`` such, accelerate no more in this fit."""
+        self.reset()
+        self.rejected += 1
+
+    def last_size(self, problem) -> float:
+        """The working-weight size of the last plain step (infinite when there is none)."""
+        return _weighted_size(problem, self.fs[-1]) if self.fs else np.inf
+
     def next(self, x: np.ndarray, f: np.ndarray, problem) -> np.ndarray | None:
         """The accelerated iterate after evaluating ``x`` with plain step ``f`` (free
         coordinates), or None to take the plain one."""
+        if self.rejected >= self.GIVE_UP:
+            return None
         if self.fs and len(self.fs[-1]) != len(f):
             self.reset()
         self.xs.append(x)
@@ -750,7 +803,11 @@ class _Anderson:
             gamma = np.linalg.solve(gram + ridge * np.eye(len(rhs)), rhs)
         except np.linalg.LinAlgError:
             return None
-        return x + f - (dX + dF) @ gamma
+        extra = -(dX + dF) @ gamma
+        reach = np.sqrt(_weighted_size(problem, extra) / size)
+        if reach > self.REACH:  # a wild extrapolation: keep it to a sane multiple
+            extra *= self.REACH / reach
+        return x + f + extra
 
 
 def _weighted_inner(problem, a: np.ndarray, b: np.ndarray) -> float:
