@@ -72,7 +72,9 @@ def test_whole_number_inputs_give_the_exact_pass_fit(family):
     model = whole_number_model(family)
     plain = model.fit(df, batch_rows=7_000)
     coded = model.fit(df, batch_rows=7_000, binned=True)
-    assert_same_fit(plain, coded, df, 1e-6)  # measured 1e-8 to 7e-8 (optimizer tolerance)
+    # measured 1e-8 to 7e-8 (optimizer tolerance); sums in another order may put the
+    # convergence test a pass either side of its threshold
+    assert_same_fit(plain, coded, df, 1e-6, pass_slack=1)
     assert any("exact" in n for n in coded.notes)
 
 

@@ -16,6 +16,7 @@ cancellation of forming zᵀWz for responses with a large mean.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field, fields
 
 import numpy as np
@@ -203,12 +204,15 @@ class Accumulator(ScalarSums):
             self.rows_buffer = np.empty((DENSE_ROWS, pd))
             self.gram = np.zeros((pd, pd), order="F")
         sw = np.sqrt(w)
-        for s in range(0, n, DENSE_ROWS):
-            e = min(n, s + DENSE_ROWS)
-            kernels.dense_rows(enc.idx[s:e], enc.val[s:e], sw[s:e], self.rows_buffer)
-            # rows_buffer[:k].T is a Fortran-ordered pd × k matrix: Gram += X̃ᵀX̃, upper part
-            self.gram = dsyrk(1.0, self.rows_buffer[:e - s].T, beta=1.0, c=self.gram,
-                              trans=0, lower=0, overwrite_c=1)
+        # one BLAS thread: these products are small, and BLAS threads spinning beside
+        # numba's and other processes' made a pass 10-50 times slower (docs/performance.md)
+        with blas_controller().limit(limits=1, user_api="blas"):
+            for s in range(0, n, DENSE_ROWS):
+                e = min(n, s + DENSE_ROWS)
+                kernels.dense_rows(enc.idx[s:e], enc.val[s:e], sw[s:e], self.rows_buffer)
+                # rows_buffer[:k].T is a Fortran-ordered pd × k matrix: Gram += X̃ᵀX̃
+                self.gram = dsyrk(1.0, self.rows_buffer[:e - s].T, beta=1.0, c=self.gram,
+                                  trans=0, lower=0, overwrite_c=1)
 
     def finish(self) -> PassState:
         dense = ordered_sum(self.dense)
@@ -237,6 +241,14 @@ def _level_rows(level_offsets: list[int], level_sizes: list[int], keep: list[int
                 ) -> np.ndarray:
     parts = [np.arange(level_offsets[t], level_offsets[t] + level_sizes[t]) for t in keep]
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+
+@functools.cache
+def blas_controller():
+    """The process's thread pools (threadpoolctl), found once: limiting them is then cheap."""
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
 
 
 def ordered_sum(per_thread: np.ndarray) -> np.ndarray:

@@ -745,9 +745,11 @@ class _Anderson:
     """Anderson acceleration of the PIRLS map x ↦ g(x) (Anderson 1965; Walker & Ni 2011,
     SIAM J. Numer. Anal. 49:1715): from the last few iterates and their steps fₖ = g(xₖ) − xₖ,
     the next iterate is g(xₖ) − (ΔX + ΔF)γ with γ minimising ‖fₖ − ΔFγ‖ in the working-
-    weight norm. Used once two plain steps in a row have shrunk slowly (each by a ratio of
-    at least ``SLOW``: a non-canonical link, weakly identified terms), where PIRLS
-    converges linearly; a fit that converges fast is left alone."""
+    weight norm. Used once two plain steps in a row have shrunk by a steady ratio of at least
+    ``SLOW`` (within a factor of three of the one before): PIRLS then converges linearly
+    (Fisher scoring with a non-canonical link, weakly identified terms, smoothing that
+    moves with the weights); a fit whose steps shrink ever faster (quadratically) is left
+    alone."""
 
     MEMORY = 4
     SLOW = 0.5
@@ -759,10 +761,12 @@ class _Anderson:
         self.fs: list[np.ndarray] = []
         self.active = False
         self.slow = 0
+        self.ratio = None
         self.rejected = 0
 
     def reset(self) -> None:
         self.xs, self.fs, self.active, self.slow = [], [], False, 0
+        self.ratio = None
 
     def reject(self) -> None:
         """An accelerated iterate did worse than the plain one: start over; after
@@ -790,7 +794,10 @@ class _Anderson:
         prev = _weighted_size(problem, self.fs[-2])
         if prev <= 0.0 or size <= 0.0:
             return None
-        self.slow = self.slow + 1 if np.sqrt(size / prev) >= self.SLOW else 0
+        ratio = float(np.sqrt(size / prev))
+        steady = self.ratio is not None and 1 / 3 <= ratio / self.ratio <= 3
+        self.ratio = ratio
+        self.slow = self.slow + 1 if ratio >= self.SLOW and steady else 0
         self.active = self.active or self.slow >= 2
         if not self.active:
             return None
