@@ -71,6 +71,9 @@ class Tuning:
         (0: never).
     sample_min_rows : int, default 100000
         ... at least this many rows; a sample of more than half the data is not drawn.
+    sample_max_rows : int, default 3000000
+        ... and at most this many (memory: about 50 bytes a row while the sample is fitted,
+        plus the sampled columns).
     """
 
     eliminate_levels: int = 200
@@ -89,11 +92,13 @@ class Tuning:
     blas_threads: int = 1
     sample_share: float = 0.03
     sample_min_rows: int = 100_000
+    sample_max_rows: int = 3_000_000
 
     def __post_init__(self):
         for name in ("eliminate_levels", "cell_limit", "exact_span", "table_rows",
                      "partition_min_rows", "blas_width", "binned_from_rows",
-                     "max_bin_points", "sample_min_rows", "blas_threads"):
+                     "max_bin_points", "sample_min_rows", "sample_max_rows",
+                     "blas_threads"):
             v = getattr(self, name)
             if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
                 raise SpecError(f"tuning {name} must be a whole number ≥ 0, got {v!r}")

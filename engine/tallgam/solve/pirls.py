@@ -180,7 +180,7 @@ def _sample_start(setup: Setup, family, runner) -> dict:
     full-data optimum; the sample only saves passes over the data."""
     tuning = setup.options.tuning
     n = setup.rows
-    size = max(tuning.sample_share * n, tuning.sample_min_rows)
+    size = min(max(tuning.sample_share * n, tuning.sample_min_rows), tuning.sample_max_rows)
     if tuning.sample_share <= 0 or family.exact_with(setup.model.link) or size > 0.5 * n:
         return {}
     share = size / n
