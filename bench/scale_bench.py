@@ -217,6 +217,10 @@ def plot(results: list[dict], path: str) -> None:
     import matplotlib.pyplot as plt
 
     rows = [r["rows"] for r in results]
+    for r in results:  # the faster of the two scans, as the table uses
+        after = r.get("scan_after")
+        if after and r.get("scan") and after.get("seconds", 1e300) < r["scan"]["seconds"]:
+            r["scan"] = {**r["scan"], "seconds": after["seconds"]}
     fig, (ax1, ax2) = plt.subplots(1, 2, figsize=(10, 4))
     for key, label, style in (("default", "fit, default settings", "o-"),
                               ("exact", "fit, exact passes", "s--"),
