@@ -45,7 +45,10 @@ class Model:
         leaves such rows out and reports how many.
     max_iterations : cap on PIRLS data passes; the last pass always evaluates the reported
         coefficients, so non-gaussian fits use at least 2.
-    tolerance : relative change of the penalized deviance that ends PIRLS.
+    tolerance : PIRLS ends when its next step would gain at most this share of the
+        penalized deviance (and move the fitted values by at most
+        ``Tuning.eta_tolerance``, root mean square on the link scale); the fit then reports
+        the iterate its last pass evaluated.
     """
 
     response: str
