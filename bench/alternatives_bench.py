@@ -28,7 +28,8 @@ seed (same truth, other rows: ``make_book.py --holdout``).
     dense).
 
 * ``tallgam`` (streaming): ``reference_model().fit(files, **engine options)`` straight from
-  the Parquet files.
+  the Parquet files; with no options, the defaults (exact or binned passes chosen by the
+  fit, a sample start on large data).
 
 Each route runs in a fresh Python process, so its peak resident memory (VmHWM, reset
 after imports and the warm-up, and ru_maxrss of the whole process) belongs to it alone.
@@ -45,7 +46,7 @@ scikit-learn route exhausts this machine's memory is extrapolated by a straight 
 (least squares) through its peak RSS at the measured sizes: an estimate, said as such.
 
     python bench/alternatives_bench.py --rows 1000000 5000000
-    python bench/alternatives_bench.py --rows 1000000 --engine-option binned=true
+    python bench/alternatives_bench.py --rows 1000000 --engine-option binned=false
 """
 
 from __future__ import annotations
@@ -173,7 +174,9 @@ def tallgam_warm_up() -> float:
     model = tg.Model("claim_count", family="poisson", exposure="exposure",
                      terms=[tg.spline("driver_age", size=5), tg.surface("lat", "lon", size=4),
                             tg.categorical("fuel"), tg.random_effect("region")])
-    model.fit(book_table(WARMUP_ROWS), batch_rows=WARMUP_ROWS // 4)
+    for binned in (False, True):
+        model.fit(book_table(WARMUP_ROWS), batch_rows=WARMUP_ROWS // 4, binned=binned,
+                  scratch=False)
     return time.perf_counter() - t0
 
 

@@ -16,10 +16,11 @@ a fresh Python process so that the peak resident memory belongs to that task alo
 The fits run after a JIT warm-up: a tiny fit of each family on 20 000 in-memory rows in
 the same process, so numba compilation or cache loading is not timed. Before each timed
 task the book's files are read once, so every task finds them in the OS page cache: the
-figures are for CPU-bound reading, not for the disk. The engine is
-timed from outside, without changing it: ``fitting._data_pass`` and ``fitting.run_profile``
-are wrapped with timers, so a pass's time is the data pass alone; the per-pass
-``history`` seconds (data pass + smoothing selection) are reported beside it.
+figures are for CPU-bound reading, not for the disk. The engine is timed from outside,
+without changing it: the local runner's pass and profile methods (``LocalPasses.working``,
+``.profile_sums``, ``.histogram_sums``) are wrapped with timers, so a pass's time is the
+data pass alone; the per-pass ``history`` seconds (data pass + smoothing selection) are
+reported beside it.
 
 Results: ``bench/results/engine-<date>.json`` and a markdown table on stdout.
 
@@ -190,8 +191,10 @@ def warm_up() -> float:
 
 
 def fit_options() -> dict:
-    """Extra fit() arguments: ``--binned`` reaches the workers through the environment."""
-    return {"binned": True} if os.environ.get("TALLGAM_BENCH_BINNED") == "1" else {}
+    """Extra fit() arguments: ``--binned`` reaches the workers through the environment
+    (auto, the default; on; off)."""
+    value = os.environ.get("TALLGAM_BENCH_BINNED", "auto")
+    return {"binned": {"on": True, "off": False}.get(value, "auto")}
 
 
 def sources_hash(pkg: str) -> str:
@@ -373,30 +376,19 @@ class Patches:
 def pass_hooks() -> list[tuple[object, str, str]]:
     """(owner, attribute, kind) of the engine functions that each run one data pass:
     kind "working" (a PIRLS pass, returns a PassState) or "loglik" (an extra pass some
-    families take). The engine's layout moves; this finds the current seam."""
-    try:
-        from tallgam.passes.run import LocalPasses
-        return [(LocalPasses, "working", "working"), (LocalPasses, "loglik", "loglik")]
-    except ImportError:
-        from tallgam.solve import pirls as fitting
-        hooks = [(fitting, "_data_pass", "working")]
-        if hasattr(fitting, "_loglik_pass"):
-            hooks.append((fitting, "_loglik_pass", "loglik"))
-        return hooks
+    families take)."""
+    from tallgam.passes.run import LocalPasses
+    return [(LocalPasses, "working", "working"), (LocalPasses, "loglik", "loglik")]
 
 
 def profile_hooks() -> list[tuple[object, str]]:
-    """The profile queries the driver runs before the first pass."""
-    from tallgam.solve import pirls as fitting
-    return [(fitting, n) for n in ("run_profile", "add_weighted_histograms",
-                                   "add_value_histograms") if hasattr(fitting, n)]
+    """The profile's two scans, which the runner makes before the first pass."""
+    from tallgam.passes.run import LocalPasses
+    return [(LocalPasses, "profile_sums"), (LocalPasses, "histogram_sums")]
 
 
 def engine_model_inputs():
-    try:
-        from tallgam.data.inputs import model_inputs
-    except ImportError:
-        from tallgam.solve.pirls import model_inputs
+    from tallgam.data.inputs import model_inputs
     return model_inputs
 
 
@@ -633,16 +625,15 @@ def main(argv=None) -> int:
     ap.add_argument("--delete-data", action="store_true",
                     help="remove each generated book after its size is done")
     ap.add_argument("--tasks", nargs="+", choices=TASKS, default=list(TASKS))
-    ap.add_argument("--binned", action="store_true",
-                    help="fit with binned=True (covariates coded into tables)")
+    ap.add_argument("--binned", choices=("auto", "on", "off"), default="auto",
+                    help="binned passes: chosen by the fit (auto), or forced on or off")
     ap.add_argument("--live-engine", action="store_true",
                     help="import the engine from its checkout in every task instead of a copy "
                          "taken when the run starts")
     ap.add_argument("--worker", choices=TASKS, help=argparse.SUPPRESS)
     ap.add_argument("--book", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
-    if args.binned:
-        os.environ["TALLGAM_BENCH_BINNED"] = "1"
+    os.environ["TALLGAM_BENCH_BINNED"] = args.binned
 
     if args.worker:
         print(json.dumps(worker(args.worker, args.book, args.batch_rows, args.scan_repeats)))

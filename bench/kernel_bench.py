@@ -6,17 +6,21 @@ book (bench/make_book.py, made in memory), every *contender* builds the same X�
 and Xᵀw_c from the same rows and weights (Poisson working weights and residuals at the
 intercept-only start, constraint weights = exposure):
 
-* ``kernel``: tallgam's own path, as a data pass runs it (engine/tallgam/passes.py): the
-  rows encoded by ``Design.blocks`` (timed apart, once, before), then ``Accumulator.add``
-  per block (``kernels.accumulate`` + ``kernels.accumulate_level_pair``) and ``finish``;
+* ``kernel``: tallgam's own path, as an exact data pass runs it
+  (engine/tallgam/passes/state.py): the rows encoded by ``Design.blocks`` (timed apart,
+  once, before), then ``Accumulator.add`` per block (``kernels.accumulate`` for the
+  right-hand side, column sums and level terms, the dense group's XᵀWX by BLAS ``dsyrk``
+  on its rows made dense when the group is narrow, ``Tuning.blas_width``) and ``finish``;
   the time is add + finish.
+* ``sparse``: the same with the dense group's XᵀWX from the sparse kernel's loops
+  (``blas_width=0``).
 * ``blas``: what a plain implementation would do: for chunks of ``--blas-chunk-rows``
   rows, materialise X (chunk × p, all p columns dense: the dense group scattered from
   the same encoded idx/val, the level terms as one-hot columns) and add
   ``X.T @ (w[:, None] * X)`` (numpy → BLAS dgemm), ``X.T @ (w r)`` and ``X.T @ w_c``;
   the time is building X + the products.
-* ``discrete``: the engine's binned layout (``tallgam.passes.binned.BinnedDesign``,
-  the ``binned=`` option of fit), through the same pass interface
+* ``binned``: the engine's binned layout (``tallgam.passes.binned.BinnedDesign``, the
+  ``binned=`` option of fit), through the same pass interface
   (``read`` / ``accumulator`` / ``add`` / ``finish``); the time is add + finish, its
   set-up and the coding of the rows are reported apart. Binned continuous columns make it
   approximate, so its difference from the exact XᵀWX is reported, not checked.
@@ -74,7 +78,7 @@ class Prepared:
 
     @property
     def level_sizes(self) -> list[int]:
-        return [b.n_raw for b in self.design.levels]
+        return self.design.level_sizes
 
     @property
     def level_offsets(self) -> list[int]:
@@ -126,7 +130,7 @@ def prepare(rows: int, seed: int, batch_rows: int) -> Prepared:
         inputs = model_inputs(model, source, model.terms)
         profile = run_profile(source, inputs.profile_fields, inputs.rules, model.where)
         design = Design([InterceptBasis()] + [t.build(profile) for t in model.terms])
-        rate0 = profile["response"].mean  # rows' mean count: a start near the mean rate
+        rate0 = profile.role("response").mean  # rows' mean count: a start near the mean rate
         batches, weights = [], []
         for batch in source.batches(inputs.select, inputs.where, batch_rows):
             cols = batch_columns(batch, inputs.level_names)
@@ -159,13 +163,21 @@ def kernel_flops_per_row(q: int, m: int) -> int:
     return q * (q + 1) + q + 4 * q + 1 + m * (3 + 2 * q) + m * (m - 1) // 2
 
 
-def run_kernel(prep: Prepared) -> Output:
+def make_run_kernel(blas_width: int) -> Callable[[Prepared], Output]:
+    def run_kernel(prep: Prepared) -> Output:
+        return kernel_output(prep, blas_width)
+    return run_kernel
+
+
+def kernel_output(prep: Prepared, blas_width: int) -> Output:
     """tallgam's accumulator over the pre-encoded blocks, as a data pass calls it."""
+    from tallgam.options import Tuning
     from tallgam.passes.state import Accumulator
 
     d = prep.design
     t0 = time.perf_counter()
-    acc = Accumulator(d.pd, prep.level_sizes, prep.threads)
+    acc = Accumulator(d.pd, prep.level_sizes, prep.threads,
+                      Tuning().blas_width if blas_width is None else blas_width)
     for enc, w, r, wc in prep.blocks:
         acc.add(enc, w, r, wc)
     t1 = time.perf_counter()
@@ -186,7 +198,7 @@ def run_kernel_accumulate_only(prep: Prepared) -> float:
     t0 = time.perf_counter()
     for enc, w, r, wc in prep.blocks:
         kernels.accumulate(enc.idx, enc.val, enc.lev, w, r, wc, acc.dense, acc.cross, acc.diag,
-                           acc.rhs_d, acc.rhs_l, acc.col_d, acc.col_l)
+                           acc.rhs_d, acc.rhs_l, acc.col_d, acc.col_l, True)
     return time.perf_counter() - t0
 
 
@@ -234,20 +246,13 @@ def make_run_blas(chunk_rows: int) -> Callable[[Prepared], Output]:
     return run_blas
 
 
-def discrete_available() -> str | None:
-    try:
-        from tallgam.passes.binned import DiscreteDesign  # noqa: F401
-    except ImportError as exc:
-        return f"tallgam.discrete not importable ({exc})"
-    return None
-
-
-def make_run_discrete(points: int | None) -> Callable[[Prepared], Output]:
-    def run_discrete(prep: Prepared) -> Output:
-        from tallgam.passes.binned import DEFAULT_POINTS, DiscreteDesign
+def make_run_binned(points: int | None) -> Callable[[Prepared], Output]:
+    def run_binned(prep: Prepared) -> Output:
+        from tallgam.options import DEFAULT_BIN_POINTS as DEFAULT_POINTS
+        from tallgam.passes.binned import BinnedDesign
 
         t0 = time.perf_counter()
-        layout = DiscreteDesign(prep.design, prep.profile, points or DEFAULT_POINTS)
+        layout = BinnedDesign(prep.design, prep.profile, points or DEFAULT_POINTS)
         coded = []
         for cols, (w, r, wc) in zip(prep.batches, prep.weights):
             for sl, block in layout.read(cols):
@@ -266,19 +271,20 @@ def make_run_discrete(points: int | None) -> Callable[[Prepared], Output]:
                       parts={"setup_and_code_seconds": t1 - t0, "add_seconds": t2 - t1,
                              "finish_seconds": t3 - t2, "points": points or DEFAULT_POINTS},
                       seconds=t3 - t1)
-    return run_discrete
+    return run_binned
 
 
 def contenders(args) -> list[Contender]:
     """The named contenders, in run order."""
     return [
-        Contender("kernel", "tallgam: Accumulator.add (kernels.accumulate + level pairs) "
-                  "over Design.blocks, finish", run_kernel),
+        Contender("kernel", "tallgam: Accumulator.add (kernels.accumulate, dense group by "
+                  "BLAS dsyrk, level pairs) over Design.blocks, finish", make_run_kernel(None)),
+        Contender("sparse", "tallgam: Accumulator.add with the sparse kernel for the dense "
+                  "group too (blas_width=0)", make_run_kernel(0)),
         Contender("blas", f"dense X ({args.blas_chunk_rows:,d}-row chunks, levels one-hot), "
                   "X.T @ (w X) by numpy/BLAS", make_run_blas(args.blas_chunk_rows)),
-        Contender("discrete", "tallgam.discrete: coded rows, cross-tables per term pair",
-                  make_run_discrete(args.discrete_points), exact=False,
-                  available=discrete_available),
+        Contender("binned", "tallgam.passes.binned: coded rows, cross-tables per term pair",
+                  make_run_binned(args.binned_points), exact=False),
     ]
 
 
@@ -379,7 +385,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=20240601)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--blas-chunk-rows", type=int, default=8192)
-    ap.add_argument("--discrete-points", type=int, default=None,
+    ap.add_argument("--binned-points", type=int, default=None,
                     help="grid values per binned column (default: the engine's)")
     ap.add_argument("--gemm-size", type=int, default=2000)
     ap.add_argument("--tolerance", type=float, default=1e-10)

@@ -3,8 +3,10 @@
 One row per policy-period: integer-valued rating factors (driver_age, vehicle_age,
 bonus_level, power, tenure), continuous ones (density, lat, lon, vehicle_value, mileage),
 categoricals (region: 20 levels, fuel: 3, vehicle_group: 500), an exposure in (0, 1], a
-gaussian response ``y`` with a known additive truth and a Poisson ``claim_count`` from a
-known log-linear additive truth with exposure. Every numeric column has its own effect, so
+gaussian response ``y`` with a known additive truth, a Poisson ``claim_count`` from a
+known log-linear additive truth with exposure, and ``claim_amount``: the total of the
+row's claims, each gamma with mean 1,500 × exp(½·s(x)) and shape 2 (0 without claims),
+for severity (gamma) and pure-premium (Tweedie) fits. Every numeric column has its own effect, so
 eight splines plus a (lat, lon) surface use ten columns without overlap
 (bench/reference.py).
 
@@ -35,7 +37,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-GENERATOR_VERSION = 2              # 2: tenure and mileage added
+GENERATOR_VERSION = 3              # 2: tenure and mileage added; 3: claim_amount
 CHUNK_ROWS = 1_000_000          # rows made at a time = one Parquet row group
 FILE_ROWS = 2_000_000           # rows per file
 HOLDOUT_CHUNK = 10**7           # first chunk stream of a hold-out book (never used by a book)
@@ -46,6 +48,8 @@ FUEL_P = (0.52, 0.43, 0.05)
 FUEL_EFFECT = (0.0, 0.10, -0.15)
 BASE_FREQUENCY = -2.3           # log claim frequency per policy-year at the reference
 GAUSS_CENTRE, GAUSS_SCALE, GAUSS_NOISE = 2.0, 3.0, 1.0
+SEVERITY_MEAN, SEVERITY_SHAPE = 1500.0, 2.0   # gamma claim sizes: mean per claim, shape
+SEVERITY_SLOPE = 0.5                         # log claim size = log mean + 0.5·s(x)
 
 NUMERIC = ("driver_age", "vehicle_age", "bonus_level", "power", "tenure",
            "density", "lat", "lon", "vehicle_value", "mileage")
@@ -202,6 +206,11 @@ def make_chunk(seed: int, chunk: int, rows: int, st: dict, first_id: int = 0) ->
     s = log_relative_frequency(numeric, region, fuel, group, st)
     y = GAUSS_CENTRE + GAUSS_SCALE * s + rng.normal(0.0, GAUSS_NOISE, n)
     claim_count = rng.poisson(exposure * np.exp(BASE_FREQUENCY + s)).astype(np.int32)
+    # drawn last, so the columns above are those of generator version 2
+    severity = SEVERITY_MEAN * np.exp(SEVERITY_SLOPE * s)
+    claim_amount = np.where(
+        claim_count > 0,
+        rng.gamma(SEVERITY_SHAPE * np.maximum(claim_count, 1), severity / SEVERITY_SHAPE), 0.0)
 
     return pa.table({
         "policy_id": np.arange(first_id, first_id + n, dtype=np.int64),
@@ -212,6 +221,7 @@ def make_chunk(seed: int, chunk: int, rows: int, st: dict, first_id: int = 0) ->
         "exposure": exposure,
         "y": y,
         "claim_count": claim_count,
+        "claim_amount": claim_amount,
     })
 
 
@@ -280,6 +290,8 @@ def write_book(rows: int, out: str, seed: int = 20240601, verbose: bool = False,
         "truth": {
             "log_frequency": f"{BASE_FREQUENCY} + s(x)",
             "gaussian_y": f"{GAUSS_CENTRE} + {GAUSS_SCALE}*s(x) + N(0, {GAUSS_NOISE}^2)",
+            "claim_amount": f"sum of claim_count gamma claims, mean {SEVERITY_MEAN}*exp("
+                            f"{SEVERITY_SLOPE}*s(x)), shape {SEVERITY_SHAPE}",
             "s(x)": "sum of the smooth functions + region + fuel + vehicle_group effects",
             "smooth": TRUTH_TEXT,
             "region_effect": dict(zip(st["region_labels"], st["region_effect"].tolist())),

@@ -12,9 +12,9 @@ is fitted in a fresh Python process, so that the peak resident memory belongs to
 The process first warms numba up with a tiny fit (not timed), then resets its peak-memory
 mark (Linux ``clear_refs``), fits, and reports:
 
-* ``seconds``: the whole fit; ``pass_seconds``: the data passes (``fitting._data_pass``,
-  wrapped from outside) and ``profile_seconds``; ``dense_seconds``: the rest, i.e. the
-  dense stage (assembling the working problem, smoothing selection, covariance);
+* ``seconds``: the whole fit; ``pass_seconds``: the data passes and ``profile_seconds``
+  (from the fit's progress events); ``dense_seconds``: the rest, i.e. the dense stage
+  (assembling the working problem, smoothing selection, covariance);
 * ``peak_rss_mb``: the process's VmHWM after the fit, and ``fit_rss_mb`` its rise during the
   fit above the resident memory before it.
 
@@ -137,36 +137,29 @@ def warm_up() -> None:
 
 
 def task_fit(path: str, levels: int, keep_dense: bool, batch_rows: int) -> dict:
-    from tallgam.solve import constraints as dense
-    from tallgam.solve import pirls as fitting
+    from tallgam.options import Tuning
 
     warm_up()
-    if keep_dense:
-        dense.ELIMINATE_LEVELS = 0  # never eliminate: the dense stage sees p × p
-    passes: list[float] = []
-    profile: list[float] = []
-    inner_pass, inner_profile = fitting._data_pass, fitting.run_profile
+    # keep_dense: never eliminate the random effect, so the dense stage sees p × p
+    tuning = Tuning(eliminate_levels=0) if keep_dense else Tuning()
+    times: dict[str, float] = {}
+    starts: dict[str, float] = {}
 
-    def timed_pass(*args, **kwargs):
-        t0 = time.perf_counter()
-        state = inner_pass(*args, **kwargs)
-        passes.append(time.perf_counter() - t0)
-        return state
-
-    def timed_profile(*args, **kwargs):
-        t0 = time.perf_counter()
-        out = inner_profile(*args, **kwargs)
-        profile.append(time.perf_counter() - t0)
-        return out
-
-    fitting._data_pass, fitting.run_profile = timed_pass, timed_profile
+    def on_event(event):  # the fit's progress events time the profile and every pass
+        if event.kind == "start":
+            starts[event.task] = time.perf_counter()
+        elif event.kind == "end" and event.task in starts:
+            times[event.task] = times.get(event.task, 0.0) + (time.perf_counter()
+                                                              - starts.pop(event.task))
     files = sorted(os.path.join(path, f) for f in os.listdir(path) if f.endswith(".parquet"))
     with open("/proc/self/clear_refs", "w") as fh:  # VmHWM := VmRSS (Linux ≥ 4.0)
         fh.write("5")
     before = vm_status()["VmRSS"]
     t0 = time.perf_counter()
-    fit = model(levels).fit(files, batch_rows=batch_rows)
+    fit = model(levels).fit(files, batch_rows=batch_rows, tuning=tuning, progress=on_event)
     seconds = time.perf_counter() - t0
+    passes = [v for k, v in times.items() if "pass" in k or k == "sample"]
+    profile = [times.get("profile", 0.0)]
     peak = vm_status()["VmHWM"]
     label = f"random_effect(g{levels})"
     return {

@@ -33,8 +33,24 @@ def reference_terms() -> list:
             + [tg.random_effect(RANDOM_EFFECT)])
 
 
-def reference_model() -> tg.Model:
-    """Poisson frequency with exposure: 8 splines, a 6 × 6 surface, 2 categoricals and a
-    500-level random effect."""
-    return tg.Model(response=RESPONSE, family="poisson", exposure=EXPOSURE,
-                    terms=reference_terms())
+AMOUNT = "claim_amount"
+TWEEDIE_POWER = 1.5
+
+
+def reference_model(family: str = "poisson") -> tg.Model:
+    """The reference terms (8 splines, a 6 × 6 surface, 2 categoricals and a 500-level
+    random effect) for claim frequency (``"poisson"``: claim counts with exposure), claim
+    severity (``"gamma"``: mean claim size over the rows with claims, claim counts as
+    weights) or pure premium (``"tweedie"``: amount per unit of exposure, power 1.5,
+    exposure as weights)."""
+    terms = reference_terms()
+    if family == "poisson":
+        return tg.Model(response=RESPONSE, family="poisson", exposure=EXPOSURE, terms=terms)
+    if family == "gamma":
+        return tg.Model(response=f"{AMOUNT} / {RESPONSE}", family="gamma", weights=RESPONSE,
+                        where=f"{RESPONSE} > 0", terms=terms)
+    if family == "tweedie":
+        return tg.Model(response=f"{AMOUNT} / {EXPOSURE}",
+                        family=tg.get_family("tweedie", power=TWEEDIE_POWER),
+                        weights=EXPOSURE, terms=terms)
+    raise ValueError(f"no reference model for the {family} family")

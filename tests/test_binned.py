@@ -53,10 +53,10 @@ def whole_number_model(family="poisson"):
     return tg.Model(response="amount", family="gaussian", terms=terms)
 
 
-def assert_same_fit(a, b, df, rtol):
+def assert_same_fit(a, b, df, rtol, pass_slack=0):
     # the smoothing-parameter optimizer stops within its own tolerance, and a term whose
     # λ runs to infinity has a flat criterion: compare what the fits say about the data
-    assert a.passes == b.passes
+    assert abs(a.passes - b.passes) <= pass_slack
     np.testing.assert_allclose(a.deviance, b.deviance, rtol=rtol)
     eta_a, eta_b = a.predict(df, output="link"), b.predict(df, output="link")
     np.testing.assert_allclose(eta_b, eta_a, rtol=0, atol=rtol * np.max(np.abs(eta_a)))
@@ -72,7 +72,9 @@ def test_whole_number_inputs_give_the_exact_pass_fit(family):
     model = whole_number_model(family)
     plain = model.fit(df, batch_rows=7_000)
     coded = model.fit(df, batch_rows=7_000, binned=True)
-    assert_same_fit(plain, coded, df, 1e-6)  # measured 1e-8 to 7e-8 (optimizer tolerance)
+    # measured 1e-8 to 7e-8 (optimizer tolerance); sums in another order may put the
+    # convergence test a pass either side of its threshold
+    assert_same_fit(plain, coded, df, 1e-6, pass_slack=1)
     assert any("exact" in n for n in coded.notes)
 
 
@@ -144,9 +146,18 @@ def test_scratch_copy_gives_the_streamed_fit_and_is_removed(tmp_path, monkeypatc
     assert len(reads) == 1                      # only the first pass read the data
     assert any(s.startswith("tallgam-scratch-") for s in seen)
     assert os.listdir(folder) == []             # removed when the fit ended
-    # same rows, same batches, same order of summation: the same numbers
-    np.testing.assert_array_equal(cached.coefficients_raw, streamed.coefficients_raw)
-    assert cached.deviance == streamed.deviance
+    # the same rows; the copy holds each batch sorted by its largest term's codes and
+    # recomputes ln(exposure), so sums differ in the last digits only. One smoothing
+    # parameter of the surface lies on a nearly flat stretch of the REML criterion, where
+    # such differences move where the search stops (measured: λ 1.0e11 against 1.6e16, the
+    # surface's EDF 5.8013 against 5.7996, fitted values 3e-4 apart on the link scale,
+    # deviances 4e-8 apart): the fits agree to that, far inside the standard errors
+    assert abs(streamed.passes - cached.passes) <= 1
+    np.testing.assert_allclose(cached.deviance, streamed.deviance, rtol=1e-6)
+    eta_a, eta_b = streamed.predict(df, output="link"), cached.predict(df, output="link")
+    np.testing.assert_allclose(eta_b, eta_a, rtol=0, atol=1e-3 * np.max(np.abs(eta_a)))
+    np.testing.assert_allclose(list(cached.edf.values()), list(streamed.edf.values()),
+                               atol=0.01)
 
 
 def test_scratch_copy_is_removed_when_the_fit_fails(tmp_path):
@@ -218,3 +229,54 @@ def test_grid_codes_equal_a_binary_search():
         grid = discrete.ColumnGrid("x", values, False, 0.0)
         x = np.concatenate([rng.lognormal(0, 1.2, 20_000), values, grid.mid, [-1.0, 1e9]])
         np.testing.assert_array_equal(grid.codes(x), np.searchsorted(grid.mid, x))
+
+
+def test_compact_scratch_copy_gives_the_blocks_of_the_streamed_pass(tmp_path):
+    # the copy keeps codes in their narrowest type, the response and weights exactly, the
+    # exposure, recomputes ln(exposure), and reorders each batch by its largest term's
+    # codes; a pass over it equals the streamed pass to rounding, every block
+    from tallgam.data.scratch import ScratchPolicy
+    from tallgam.data.scratch import prepare as prepare_scratch
+    from tallgam.data.sources import open_source
+    from tallgam.options import RunOptions
+    from tallgam.passes.run import PassPlan, working_pass
+    from tallgam.progress import make_callback
+    from tallgam.solve.pirls import prepare
+
+    df = whole_number_book(20_000)
+    df["density"] = np.random.default_rng(6).lognormal(4, 1, len(df))
+    model = tg.Model(response="claims", family="poisson", exposure="exposure",
+                     terms=whole_number_model("poisson").terms + (tg.spline("density"),))
+    source = open_source(df)
+    setup = prepare(model, source, RunOptions(binned=True), make_callback(False))
+    rng = np.random.default_rng(1)
+    beta = 0.02 * rng.standard_normal(setup.design.p)
+    beta[0] = -2.0
+    plan = PassPlan(inputs=setup.inputs, design=setup.design, family=model.family,
+                    link=model.link, beta=beta, beta_prev=0.9 * beta, start_shift=-2.0,
+                    null_beta0=-2.0, y_mean=setup.profile.role("response").mean,
+                    scale_est=1.0, batch_rows=7_000, binned=setup.binned,
+                    values=setup.values)
+    streamed = working_pass(source, plan)
+    scratch = prepare_scratch(None, ScratchPolicy(folder=str(tmp_path)), plan, len(df))
+    try:
+        written = working_pass(source, plan, scratch=scratch)
+        assert scratch.complete and scratch.rows == len(df)
+        read = working_pass(source, plan, scratch=scratch)
+        # bytes a row: each term's code in the narrowest unsigned type that holds it, one
+        # for the claim count, eight for the exposure, nothing for the offset
+        codes = sum(t.itemsize for _, t in scratch.codes)
+        assert scratch.size == len(df) * (codes + 1 + 8)
+        assert scratch.size / len(df) <= 24
+    finally:
+        scratch.remove()
+    for state in (written, read):
+        for name in ("dense", "cross", "diag", "rhs", "colsum"):
+            a, b = getattr(streamed, name), getattr(state, name)
+            np.testing.assert_allclose(b, a, rtol=0, atol=1e-10 * np.max(np.abs(a)),
+                                       err_msg=name)
+        for key in streamed.pairs:
+            np.testing.assert_allclose(state.pairs[key], streamed.pairs[key], rtol=0,
+                                       atol=1e-10 * np.max(np.abs(streamed.pairs[key])))
+        for key in ("deviance", "resid_ss", "weight", "loglik", "pearson"):
+            np.testing.assert_allclose(state.scalars[key], streamed.scalars[key], rtol=1e-10)

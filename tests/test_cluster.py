@@ -320,3 +320,71 @@ def test_missing_dask_says_how_to_install(book, monkeypatch):
     monkeypatch.setitem(sys.modules, "distributed", None)  # as if not installed
     with pytest.raises(tg.SpecError, match=r"pip install 'tallgam\[dask\]'"):
         gaussian_model().fit(str(folder / "*.parquet"), cluster="tcp://127.0.0.1:1")
+
+
+def test_profile_of_the_parts_merges_to_the_profile_of_the_whole(book):
+    # the profile's scans are sums that merge: per file, then merged, as the cluster does
+    from tallgam.data.inputs import model_inputs
+    from tallgam.data.profile import histogram_scan, profile_scan
+
+    folder, _ = book
+    data = str(folder / "*.parquet")
+    model = poisson_model()
+    with open_source(data) as source:
+        inputs = model_inputs(model, source, model.terms)
+        fields, rules = inputs.profile_fields, inputs.rules
+        whole = profile_scan(source, fields, rules, None)
+        parts = [profile_scan(tgc.open_partition(p), fields, rules, None)
+                 for p in tgc.partitions_of(data, source)]
+    merged = parts[0]
+    for p in parts[1:]:
+        merged = merged.merge(p)
+    a, b = whole.profile(fields, rules), merged.profile(fields, rules)
+    assert a.rows == b.rows == N_FILES * ROWS_PER_FILE
+    for name, col in a.columns.items():
+        other = b.columns[name]
+        for key in ("min", "max", "nulls", "integer"):
+            assert getattr(col, key, None) == getattr(other, key, None), (name, key)
+        if col.kind == "numeric":
+            assert other.mean == pytest.approx(col.mean, rel=1e-12)
+            assert other.sd == pytest.approx(col.sd, rel=1e-10)
+        else:
+            assert list(col.labels) == list(other.labels)
+            np.testing.assert_array_equal(col.rows, other.rows)
+    with open_source(data) as source:
+        weight = inputs.select_expr("__wc")
+        h_whole = histogram_scan(source, a, fields, weight, None)
+        h_parts = [histogram_scan(tgc.open_partition(p), a, fields, weight, None)
+                   for p in tgc.partitions_of(data, source)]
+    h = h_parts[0]
+    for p in h_parts[1:]:
+        h = h.merge(p)
+    for name in h_whole.rows:
+        np.testing.assert_array_equal(h.rows[name], h_whole.rows[name])
+        np.testing.assert_allclose(h.weight[name], h_whole.weight[name], rtol=1e-12)
+
+
+def test_binned_cluster_fit_reads_the_data_once_and_removes_its_copies(book, monkeypatch,
+                                                                      tmp_path):
+    # workers in this process (threads), so the reads can be counted; the copies of the
+    # coded rows live in the workers' folders and are gone when the fit ends
+    folder, _ = book
+    data = str(folder / "*.parquet")
+    opened = []
+    real = tgc.open_partition
+
+    def counting(part, threads=None):
+        opened.append(part.index)
+        return real(part, threads)
+    monkeypatch.setattr(tgc, "open_partition", counting)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=False,
+                                  dashboard_address=None,
+                                  local_directory=str(tmp_path)) as lc, \
+            distributed.Client(lc, set_as_default=False) as c:
+        fit = poisson_model().fit(data, batch_rows=1500, binned=True, cluster=c)
+    local = poisson_model().fit(data, batch_rows=1500, binned=True)
+    assert fit.passes >= 3
+    # the profile's two scans and the first pass read every partition; later passes none
+    assert sorted(opened) == sorted(list(range(N_FILES)) * 3)
+    assert not [p for p in tmp_path.rglob("tallgam-scratch-*")]
+    assert_same_fit(fit, local, rtol=1e-7)

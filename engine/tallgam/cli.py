@@ -155,16 +155,30 @@ def cmd_fit(args) -> int:
         where = f"({model.where}) AND ({args.where})" if model.where else args.where
         model = replace(model, where=where)
     out = args.output or spec.output or os.path.splitext(args.spec)[0] + ".json"
-    binned = spec.binned if args.binned is None else args.binned
+    binned = spec.binned if args.binned is None else _binned_flag(args.binned)
     check_target(out)  # a bad output path fails now, not after the fit
     fit = model.fit(data, batch_rows=args.batch_rows or spec.batch_rows,
                     threads=args.threads or spec.threads, progress=_progress(args),
                     cluster=args.cluster, binned=binned,
-                    scratch=args.scratch if args.scratch is not None else spec.scratch)
+                    scratch=args.scratch if args.scratch is not None else spec.scratch,
+                    start=args.start or spec.start,
+                    checkpoint=args.checkpoint or spec.checkpoint)
     fit.save(out)
     _print(args, fit.summary())
     _say(args, f"model written to {out}")
     return EXIT_OK if fit.converged else EXIT_NOT_CONVERGED
+
+
+def _binned_flag(text: str):
+    """``--binned`` [auto | on | off | POINTS] as Model.fit's ``binned``."""
+    words = {"auto": "auto", "on": True, "true": True, "off": False, "false": False}
+    if text.lower() in words:
+        return words[text.lower()]
+    try:
+        return int(text)
+    except ValueError:
+        raise SpecError(f"--binned takes auto, on, off or a number of grid values, got "
+                        f"{text!r}") from None
 
 
 def cmd_show(args) -> int:
@@ -410,14 +424,24 @@ def build_parser() -> argparse.ArgumentParser:
     f.add_argument("--threads", type=int, default=None, metavar="N",
                    help="cores to use (default: all; with --cluster: threads per task, "
                         "default 1)")
-    f.add_argument("--binned", nargs="?", type=int, const=True, default=None,
-                   metavar="POINTS",
+    f.add_argument("--binned", nargs="?", const="on", default=None,
+                   metavar="auto|on|off|POINTS",
                    help="binned passes: code covariates into tables of distinct values, "
                         "exact for whole numbers, other columns rounded to POINTS grid values "
-                        "(default 200); several times faster per data pass")
+                        "(on: 200); several times faster per data pass. Default auto: "
+                        "chosen by the fit and said in the model's notes")
     f.add_argument("--scratch", metavar="DIR", default=None,
-                   help="with --binned: folder for the scratch copy of the coded rows "
+                   help="binned passes: folder for the scratch copy of the coded rows "
                         "(default: the system's temporary folder)")
+    f.add_argument("--start", metavar="MODEL", default=None,
+                   help="a model file of an earlier fit of the same model (e.g. last "
+                        "month's): its predictions start the iterations, so a refit takes "
+                        "few passes; the result is the fit to the data")
+    f.add_argument("--checkpoint", metavar="FILE", default=None,
+                   help="record what every scan of the data returned in FILE, flushed as "
+                        "each ends; run the same command again after a kill or a fault and "
+                        "the fit resumes where it stopped, with the same result (FILE is "
+                        "removed when the fit ends)")
     f.add_argument("--cluster", metavar="ADDRESS", default=None,
                    help="run the data passes on the Dask cluster whose scheduler is at "
                         "ADDRESS (e.g. tcp://host:8786); needs tallgam[dask] and data on "

@@ -173,9 +173,6 @@ def severity_model(where: str | None = TRAIN):
                tg.categorical("region", base=BASE_REGION)])
 
 
-BINNED_ROWS = 5_000_000  # books of this size and over are fitted with binned=True
-
-
 SPECS = (  # file name, model, what it is
     ("frequency", frequency_model, "claim frequency: poisson, log link, ln(exposure) offset"),
     ("frequency_banded", banded_frequency_model,
@@ -185,7 +182,7 @@ SPECS = (  # file name, model, what it is
 )
 
 
-def write_specs(folder, *, binned: bool = False) -> list[str]:
+def write_specs(folder) -> list[str]:
     """Write the demo's spec files (TOML) into ``folder``, reading the book from
     ``book/*.parquet`` beside them; returns the paths. Copy them to start a model of your
     own."""
@@ -195,8 +192,7 @@ def write_specs(folder, *, binned: bool = False) -> list[str]:
     paths = []
     for name, make, what in SPECS:
         path = os.path.join(folder, f"{name}.toml")
-        text = spec_text(make(), data="book/*.parquet", binned=True if binned else None,
-                         output=f"{name}.json",
+        text = spec_text(make(), data="book/*.parquet", output=f"{name}.json",
                          comment=f"The demo's {what}.\nFit it with: tallgam fit {name}.toml")
         write_text(path, text)
         paths.append(path)
@@ -217,11 +213,9 @@ def run_demo(folder, rows: int = 1_000_000, *, seed: int = 7, progress=False,
     echo(f"writing an invented motor book of {rows:,} policies to {book_dir}")
     book = write_book(book_dir, rows, seed=seed)
     glob = os.path.join(book_dir, "*.parquet")
-    binned = rows >= BINNED_ROWS  # large books: passes on coded rows (docs/performance.md)
-    specs = write_specs(folder, binned=binned)
+    specs = write_specs(folder)
     echo("spec files to copy from: " + ", ".join(specs))
-    if binned:
-        echo("large book: binned passes, covariates coded into tables of distinct values")
+    # exact or binned passes are chosen by each fit (binned="auto"; its notes say which)
     fits = {}
     for (name, _, what), path in zip(SPECS, specs):
         spec = load_spec(path)

@@ -7,6 +7,7 @@ data to the iteration driver (:mod:`tallgam.solve.pirls`) and returns a
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -44,7 +45,10 @@ class Model:
         leaves such rows out and reports how many.
     max_iterations : cap on PIRLS data passes; the last pass always evaluates the reported
         coefficients, so non-gaussian fits use at least 2.
-    tolerance : relative change of the penalized deviance that ends PIRLS.
+    tolerance : PIRLS ends when its next step would gain at most this share of the
+        penalized deviance (and move the fitted values by at most
+        ``Tuning.eta_tolerance``, root mean square on the link scale); the fit then reports
+        the iterate its last pass evaluated.
     """
 
     response: str
@@ -99,8 +103,9 @@ class Model:
             raise SpecError("max_iterations must be at least 1")
 
     def fit(self, data, *, batch_rows: int = DEFAULT_BATCH_ROWS, threads: int | None = None,
-            progress=False, cluster=None, binned: bool | int = False,
-            scratch: str | bool | None = None, tuning: Tuning | None = None) -> FitResult:
+            progress=False, cluster=None, binned: bool | int | str | None = "auto",
+            scratch: str | bool | None = None, tuning: Tuning | None = None,
+            start=None, checkpoint: str | os.PathLike | None = None) -> FitResult:
         """Fit the model to ``data`` and return the :class:`~tallgam.FitResult`.
 
         Parameters
@@ -118,23 +123,43 @@ class Model:
         cluster : distributed.Client, scheduler address or Dask cluster, optional
             Runs the data passes on that cluster (``data`` must be files every worker can
             read; see docs/distributed.md); the result equals the local fit up to rounding.
-        binned : bool or int, default False
+        binned : "auto" (or None), bool or int, default "auto"
             Binned data passes (see :mod:`tallgam.passes.binned` and
             docs/performance.md): every term coded into a table of its distinct design
             rows; exact for whole-number columns, other numeric columns rounded to the
             nearest of ``binned`` grid values (True: 200); several times faster per pass.
+            "auto" chooses: exact passes for small data, binned ones for large data when
+            binning moves no value by more than a quarter of its knot interval; the choice
+            and its reason are in ``statistics["passes_mode"]`` and the notes.
         scratch : str, bool or None
             Binned fits: a folder for a scratch copy of the coded rows that later passes
             read instead of the data (None: the system's temporary folder; False: read the
             data every pass); removed when the fit ends.
         tuning : tallgam.options.Tuning, optional
             Engine constants (tests and benchmarks).
+        start : FitResult or path of a model file, optional
+            A previous fit of the same model (e.g. last month's): its predictions start the
+            iterations, so a refit on data that changed a little takes two or three
+            passes. The result is the fit to ``data``, as without ``start``.
+        checkpoint : path of a file, optional
+            Records what every scan of the data returned (the profile, the sample start,
+            the sums of every data pass), flushed to disk as each ends. A fit killed at
+            any point and started again with the same ``checkpoint`` (same model, options
+            and data) takes the recorded results instead of reading the data again and
+            gives the uninterrupted fit's result; see :mod:`tallgam.solve.checkpoint`.
+            Removed when the fit ends.
         """
         from tallgam.solve.pirls import fit_model
 
         options = RunOptions(batch_rows=batch_rows, threads=threads, progress=progress,
-                             cluster=cluster, binned=binned, scratch=scratch, tuning=tuning)
-        return FitResult.from_state(fit_model(self, data, options))
+                             cluster=cluster, binned=binned, scratch=scratch, tuning=tuning,
+                             checkpoint=checkpoint)
+        if start is not None and not isinstance(start, FitResult):
+            if not isinstance(start, (str, os.PathLike)):
+                raise SpecError(f"start= takes a fit result or the path of a model file, got "
+                                f"{type(start).__name__}")
+            start = load(start)
+        return FitResult.from_state(fit_model(self, data, options, start=start))
 
     def to_dict(self) -> dict:
         return {

@@ -50,7 +50,7 @@ MODEL_KEYS: dict[str, tuple] = {
 TARIFF_KEYS: dict[str, tuple] = {"bands": (dict,), "tariff": (dict,)}  # read by `tallgam tariff`
 RUN_KEYS: dict[str, tuple] = {
     "data": (str, list), "batch_rows": (int,), "threads": (int,), "output": (str,),
-    "binned": (bool, int), "scratch": (str, bool),
+    "binned": (bool, int, str), "scratch": (str, bool), "start": (str,), "checkpoint": (str,),
 }
 
 
@@ -64,8 +64,10 @@ class RunSpec:
     threads: int | None = None
     output: str | None = None
     path: str | None = None
-    binned: bool | int = False
+    binned: bool | int | str = "auto"
     scratch: str | bool | None = None
+    start: str | None = None
+    checkpoint: str | None = None
     extra: dict = field(default_factory=dict)
 
 
@@ -153,9 +155,12 @@ def parse_spec(text: str, path: str | None = None) -> RunSpec:
     scratch = raw.get("scratch")
     if isinstance(scratch, str):
         scratch = _resolve(scratch, base)
+    start, checkpoint = (_resolve(v, base) if isinstance(v, str) else None
+                         for v in (raw.get("start"), raw.get("checkpoint")))
     return RunSpec(model=model, data=data, batch_rows=int(raw.get("batch_rows", 1_000_000)),
                    threads=raw.get("threads"), output=raw.get("output"), path=path,
-                   binned=raw.get("binned", False), scratch=scratch)
+                   binned=raw.get("binned", "auto"), scratch=scratch, start=start,
+                   checkpoint=checkpoint)
 
 
 def _toml_value(value) -> str:

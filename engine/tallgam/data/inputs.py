@@ -8,7 +8,9 @@ list made here, so a column is cast and quoted the same way everywhere.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+
+import duckdb
 
 from tallgam.data.profile import DataProfile, Field, Rule
 from tallgam.data.sources import Source, quote
@@ -66,6 +68,26 @@ class Inputs:
     profile_fields: list[Field] = field(default_factory=list)
     rules: list[Rule] = field(default_factory=list)
     exprs: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def cweights_are_weights(self) -> bool:
+        """The constraint weights are the prior weights (weights given, no exposure)."""
+        return self.has_cweights and "__exposure" not in self.exprs
+
+    @property
+    def offset_is_log_cweights(self) -> bool:
+        """The offset is ln(exposure) alone, and the exposure the constraint weights."""
+        return "__exposure" in self.exprs and "__offset" not in self.exprs
+
+    @property
+    def aliases(self) -> list[str]:
+        """The names of the select list's columns, in order."""
+        return [item.rsplit(" AS ", 1)[1] for item in self.select]
+
+    def over_selected(self) -> Inputs:
+        """The same inputs read from a table of the select list's own columns (e.g. a sample
+        drawn with :func:`sample_rows`): no expressions, no filter."""
+        return replace(self, select=list(self.aliases), where=None)
 
     def select_expr(self, alias: str) -> str:
         """The SQL expression behind a select-list alias (e.g. the constraint weights)."""
@@ -154,6 +176,25 @@ def model_inputs(model, source: Source, design_specs, for_prediction: bool = Fal
         c for c, k in columns.items() if k == "levels"}, has_weights=W in exprs,
         has_offset=bool(parts), has_cweights=cw is not None and not for_prediction,
         profile_fields=fields_, rules=rules, exprs=exprs)
+
+
+SAMPLE_MODULUS = 1_000_003  # a prime: row hashes are cut into this many buckets
+
+
+def sample_rows(source: Source, inputs: Inputs, share: float):
+    """About ``share`` of the rows the model reads (its select list, after its filter), as
+    an Arrow table: every row whose hash of its model values falls in the first
+    ``share`` of the buckets, so the same data give the same sample whatever the threads,
+    batches or file order (DuckDB's ``hash``)."""
+    keep = max(1, int(round(share * SAMPLE_MODULUS)))
+    where = f" WHERE {inputs.where}" if inputs.where else ""
+    names = ", ".join(inputs.aliases)
+    text = (f"SELECT * FROM (SELECT {', '.join(inputs.select)} FROM tallgam_source{where}) "
+            f"WHERE hash({names}) % {SAMPLE_MODULUS} < {keep}")
+    try:
+        return source.query(text).to_arrow_table()
+    except duckdb.Error as exc:
+        raise DataError(f"drawing a sample of {source.label} failed: {exc}") from exc
 
 
 def resolved_expressions(inputs: Inputs) -> dict[str, str]:

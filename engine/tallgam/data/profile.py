@@ -1,18 +1,20 @@
-"""The profile pass: what the training data look like, from two aggregate queries.
+"""The profile pass: what the training data look like, from two scans.
 
-The first query returns the row count and, per profiled quantity, NULL and non-finite
-counts, minimum, maximum, mean, standard deviation and whether every value is a whole
-number; the row count of every level of a level column; and counts with a few example
+The first scan (:func:`profile_scan`) gives the row count and, per profiled quantity, NULL and
+non-finite counts, minimum, maximum, mean, standard deviation and whether every value is a
+whole number; the row count of every level of a level column; and counts with a few example
 values of rows that break a stated rule (e.g. negative claim counts). The second
-(:func:`add_value_histograms`) counts the rows, and sums the exposure (or weights), per
-value of every numeric model column and per level of every level column: numeric values
-are placed on a grid of ``HIST_BUCKETS`` steps from the column's minimum to its maximum,
-which is exact for whole-number columns spanning at most that many values (ages, years,
-bonus levels). A positive column whose values bunch at the low end of a range of several
-orders of magnitude (a population density, a sum insured: :func:`geometric_grid`) gets
-steps of equal ratio instead, so the bulk of its data is not crushed into the first steps.
-Grid values are rounded to 12 significant digits (:func:`tidy`). One grouped query serves
-all columns; memory is bounded by the grid, never by the rows.
+(:func:`histogram_scan`) counts the rows, and sums the exposure (or weights), per value of
+every numeric model column and per level of every level column: numeric values are placed on a
+grid of ``HIST_BUCKETS`` steps from the column's minimum to its maximum, which is exact for
+whole-number columns spanning at most that many values (ages, years, bonus levels). A positive
+column whose values bunch at the low end of a range of several orders of magnitude (a
+population density, a sum insured: :func:`geometric_grid`) gets steps of equal ratio instead,
+so the bulk of its data is not crushed into the first steps. Grid values are rounded to 12
+significant digits (:func:`tidy`). DuckDB reads, filters and casts; small numba loops reduce
+each batch into sums that merge by addition, so cluster workers can profile parts of the data
+and the client merges them (:class:`ProfileSums`, :class:`HistogramSums`). Memory is bounded
+by the grid and a batch, never by the rows.
 
 The result is a :class:`DataProfile`: the model's columns (:meth:`DataProfile.numeric`,
 :meth:`DataProfile.levels`) and its roles (response, weights, exposure, offset:
@@ -23,9 +25,13 @@ the value histograms merged to at most ``SAVED_VALUES`` values per column
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field, replace
 
+import numba
 import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from tallgam.data.sources import Source
 from tallgam.errors import DataError, ModelFileError
@@ -333,67 +339,302 @@ def _lookup(prof: DataProfile, f: Field) -> ColumnProfile:
     return prof.roles[f.role] if f.role is not None else prof.columns[f.name]
 
 
+# --------------------------------------------------------------------------- the scans
+# Both scans read the profiled quantities in batches and reduce them with small numba loops
+# into sums that merge by addition (or min/max), so a profile is the same whether one
+# process reads the whole source or cluster workers read its parts and the client merges.
+
+SCAN_ROWS = 1_000_000  # rows per batch of a profile scan
+
+
+@numba.njit(cache=True)
+def _numeric_sums(x):
+    """(finite rows, min, max, mean, M2 = Σ(x − mean)², all whole numbers) of x's finite
+    values (mean and M2 by two loops over the batch)."""
+    n = 0
+    lo = np.inf
+    hi = -np.inf
+    total = 0.0
+    whole = True
+    for v in x:
+        if math.isfinite(v):
+            n += 1
+            lo = min(lo, v)
+            hi = max(hi, v)
+            total += v
+            if whole and v != math.floor(v):
+                whole = False
+    mean = total / n if n else 0.0
+    m2 = 0.0
+    for v in x:
+        if math.isfinite(v):
+            d = v - mean
+            m2 += d * d
+    return n, lo, hi, mean, m2, whole
+
+
+@numba.njit(cache=True)
+def _bucket_sums(x, w, lo, step, ratio, buckets, rows, weight):
+    """rows[k] += 1 and weight[k] += w for every finite x, k = round((x − lo)/step), or
+    with ``ratio`` k = round(ln(x/lo)/step), rounded half away from zero and clipped to
+    [0, buckets]."""
+    for i in range(x.shape[0]):
+        v = x[i]
+        if math.isfinite(v):
+            if ratio:
+                t = math.log(v / lo) / step if v > 0 else 0.0
+            else:
+                t = (v - lo) / step
+            k = int(math.floor(t + 0.5))
+            if k < 0:
+                k = 0
+            elif k > buckets:
+                k = buckets
+            rows[k] += 1.0
+            weight[k] += w[i]
+
+
+@dataclass
+class ColumnSums:
+    """The first scan's sums of one numeric quantity."""
+
+    nulls: int = 0
+    nonfinite: int = 0
+    n: int = 0
+    min: float = math.inf
+    max: float = -math.inf
+    mean: float = 0.0
+    m2: float = 0.0
+    whole: bool = True
+
+    def add(self, nulls: int, nonfinite: int, n, lo, hi, mean, m2, whole) -> None:
+        self.nulls += nulls
+        self.nonfinite += nonfinite
+        if n:   # Chan, Golub & LeVeque (1983): pooled mean and sum of squares
+            total = self.n + n
+            delta = mean - self.mean
+            self.mean += delta * n / total
+            self.m2 += m2 + delta * delta * self.n * n / total
+            self.n = total
+            self.min, self.max = min(self.min, lo), max(self.max, hi)
+            self.whole = self.whole and bool(whole)
+
+    def merge(self, other: ColumnSums) -> ColumnSums:
+        out = replace(self)
+        out.add(other.nulls, other.nonfinite, other.n, other.min, other.max, other.mean,
+                other.m2, other.whole)
+        return out
+
+
+@dataclass
+class ProfileSums:
+    """What the first profile scan takes from a source (or a part of it): rows, per numeric
+    quantity :class:`ColumnSums`, per level column its NULLs and rows per level, per rule
+    its count of bad rows and smallest examples. Parts merge with :meth:`merge`."""
+
+    rows: int = 0
+    numeric: dict = field(default_factory=dict)   # field key -> ColumnSums
+    levels: dict = field(default_factory=dict)    # field key -> (nulls, {label: rows})
+    rules: dict = field(default_factory=dict)     # rule key -> (bad rows, examples)
+
+    def merge(self, other: ProfileSums) -> ProfileSums:
+        out = ProfileSums(self.rows + other.rows)
+        for k in self.numeric.keys() | other.numeric.keys():
+            a, b = self.numeric.get(k), other.numeric.get(k)
+            out.numeric[k] = a.merge(b) if a and b else replace(a or b)
+        for k in self.levels.keys() | other.levels.keys():
+            na, ca = self.levels.get(k, (0, {}))
+            nb, cb = other.levels.get(k, (0, {}))
+            counts = dict(ca)
+            for label, c in cb.items():
+                counts[label] = counts.get(label, 0) + c
+            out.levels[k] = (na + nb, counts)
+        for k in self.rules.keys() | other.rules.keys():
+            na, ea = self.rules.get(k, (0, []))
+            nb, eb = other.rules.get(k, (0, []))
+            out.rules[k] = (na + nb, sorted(ea + eb)[:EXAMPLES])
+        return out
+
+    def profile(self, fields: list[Field], rules: list[Rule]) -> DataProfile:
+        """The :class:`DataProfile` (without value histograms) these sums describe."""
+        prof = DataProfile(rows=int(self.rows))
+        for f in fields:
+            if f.kind == "numeric":
+                c = self.numeric[f.key]
+                p = NumericProfile(nulls=c.nulls, nonfinite=c.nonfinite)
+                if c.n:
+                    p.min, p.max, p.mean = float(c.min), float(c.max), float(c.mean)
+                    p.sd = float(math.sqrt(max(c.m2, 0.0) / c.n))
+                    p.integer = bool(c.whole)
+            else:
+                nulls, counts = self.levels[f.key]
+                p = LevelProfile(nulls=nulls)
+                _set_levels(p, counts)
+            _store(prof, f, p)
+        for r in rules:
+            n, examples = self.rules.get(r.key, (0, []))
+            if n:
+                prof.violations[r.key] = (int(n), list(examples), r.message)
+        return prof
+
+
+def _scan(source: Source, columns: list[str], where: str | None, extra: list[str] = (),
+          batch_rows: int = SCAN_ROWS):
+    """Arrow batches of ``columns`` (SQL with aliases) over the filtered source, and of
+    ``extra`` (SQL over those aliases)."""
+    where_sql = f" WHERE {where}" if where else ""
+    text = f"SELECT {', '.join(columns)} FROM tallgam_source{where_sql}"
+    if extra:
+        text = f"WITH r AS ({text}) SELECT *, {', '.join(extra)} FROM r"
+    yield from source.stream(text, batch_rows, "profiling")
+
+
+def profile_scan(source: Source, fields: list[Field], rules: list[Rule],
+                 where: str | None, batch_rows: int = SCAN_ROWS) -> ProfileSums:
+    """The first profile scan of ``source`` (filtered by ``where``): :class:`ProfileSums`
+    of ``fields`` and ``rules``."""
+    alias = {f.key: _alias(i) for i, f in enumerate(fields)}
+    columns = [f"CAST({f.expr} AS {'DOUBLE' if f.kind == 'numeric' else 'VARCHAR'}) "
+               f"AS {alias[f.key]}" for f in fields]
+    checks = [f"coalesce(CAST(({r.condition.format(**alias)}) AS BOOLEAN), false) AS q{i}"
+              for i, r in enumerate(rules)]
+    out = ProfileSums()
+    for f in fields:
+        if f.kind == "numeric":
+            out.numeric[f.key] = ColumnSums()
+        else:
+            out.levels[f.key] = (0, {})
+    for r in rules:
+        out.rules[r.key] = (0, [])
+    for batch in _scan(source, columns, where, checks, batch_rows):
+        out.rows += batch.num_rows
+        cols = dict(zip(batch.schema.names, batch.columns))
+        for f in fields:
+            col = cols[alias[f.key]]
+            if f.kind == "numeric":
+                x = np.ascontiguousarray(col.to_numpy(zero_copy_only=False), dtype=np.float64)
+                n, lo, hi, mean, m2, whole = _numeric_sums(x)
+                nonfinite = len(x) - n - col.null_count
+                out.numeric[f.key].add(col.null_count, nonfinite, n, lo, hi, mean, m2, whole)
+            else:
+                nulls, counts = out.levels[f.key]
+                for item in pc.value_counts(col).to_pylist():
+                    if item["values"] is not None:
+                        label = str(item["values"])
+                        counts[label] = counts.get(label, 0) + int(item["counts"])
+                out.levels[f.key] = (nulls + col.null_count, counts)
+        for i, r in enumerate(rules):
+            bad = cols[f"q{i}"]
+            count = pc.sum(bad).as_py() or 0
+            if count:
+                values = pc.drop_null(pc.filter(cols[alias[r.field]], bad))
+                examples = sorted(values.to_pylist())[:EXAMPLES]
+                n, ex = out.rules[r.key]
+                out.rules[r.key] = (n + count, sorted(ex + examples)[:EXAMPLES])
+    return out
+
+
+@dataclass
+class HistogramSums:
+    """What the second profile scan takes from a source (or a part): per numeric model
+    column rows and Σ weight per grid step (``grid``: its first value and step), per level
+    column Σ weight per level. Parts merge with :meth:`merge`."""
+
+    grid: dict = field(default_factory=dict)     # column -> (lo, step, equal ratio?)
+    rows: dict = field(default_factory=dict)     # column -> (HIST_BUCKETS + 1,)
+    weight: dict = field(default_factory=dict)   # column -> (HIST_BUCKETS + 1,) or levels
+    weighted: bool = False
+
+    def merge(self, other: HistogramSums) -> HistogramSums:
+        return HistogramSums(dict(self.grid),
+                             {k: v + other.rows[k] for k, v in self.rows.items()},
+                             {k: v + other.weight[k] for k, v in self.weight.items()},
+                             self.weighted)
+
+    def apply(self, prof: DataProfile, weight_name: str | None) -> None:
+        """Put the histograms into ``prof``."""
+        prof.weight_name = weight_name if self.weighted else None
+        for name, (lo, step, ratio) in self.grid.items():
+            fp = prof.columns[name]
+            rows = self.rows[name]
+            ks = np.flatnonzero(rows)
+            grid = lo * np.exp(ks * step) if ratio else lo + ks * step
+            fp.values = np.minimum(tidy(grid), fp.max) if len(ks) else np.zeros(0)
+            fp.rows = rows[ks]
+            fp.weight = self.weight[name][ks] if self.weighted else None
+        if self.weighted:
+            for name, weight in self.weight.items():
+                if name not in self.grid:
+                    prof.columns[name].weight = weight
+
+
+def histogram_plan(prof: DataProfile, fields: list[Field]) -> tuple[list, list]:
+    """The numeric model columns with their grid (lo, step, equal ratio?) and the level
+    columns that the histograms cover."""
+    numeric = []
+    for f in fields:
+        if f.role is None and f.kind == "numeric" and prof.columns[f.name].min is not None:
+            fp = prof.columns[f.name]
+            lo, hi = float(fp.min), float(fp.max)
+            if geometric_grid(fp):  # steps of equal ratio in ln(x / lo)
+                numeric.append((f, lo, float(np.log(hi / lo)) / HIST_BUCKETS, True))
+                continue
+            step = 1.0 if fp.integer and hi - lo <= HIST_BUCKETS else (hi - lo) / HIST_BUCKETS
+            numeric.append((f, lo, step or 1.0, False))
+    levels = [f for f in fields if f.role is None and f.kind == "levels"]
+    return numeric, levels
+
+
+def histogram_scan(source: Source, prof: DataProfile, fields: list[Field],
+                   weight_expr: str | None, where: str | None,
+                   batch_rows: int = SCAN_ROWS) -> HistogramSums:
+    """The second profile scan: rows (and Σ ``weight_expr``) per grid value of every
+    numeric model column and per level of every level column; needs the minimum and
+    maximum (and the levels) from the first scan in ``prof``."""
+    numeric, levels = histogram_plan(prof, fields)
+    out = HistogramSums(weighted=weight_expr is not None)
+    for f, lo, step, ratio in numeric:
+        out.grid[f.name] = (lo, step, ratio)
+        out.rows[f.name] = np.zeros(HIST_BUCKETS + 1)
+        out.weight[f.name] = np.zeros(HIST_BUCKETS + 1)
+    labels = {}
+    for f in levels:
+        lp = prof.columns[f.name]
+        labels[f.name] = pa.array([str(v) for v in lp.labels], type=pa.string())
+        if out.weighted:
+            out.weight[f.name] = np.zeros(len(lp.labels))
+    if not numeric and not (levels and out.weighted):
+        return out
+    columns = [f"CAST({f.expr} AS DOUBLE) AS h{i}" for i, (f, *_) in enumerate(numeric)]
+    if out.weighted:
+        columns += [f"CAST({f.expr} AS VARCHAR) AS g{i}" for i, f in enumerate(levels)]
+        columns.append(f"CAST({weight_expr} AS DOUBLE) AS w")
+    for batch in _scan(source, columns, where, batch_rows=batch_rows):
+        cols = dict(zip(batch.schema.names, batch.columns))
+        w = (np.ascontiguousarray(cols["w"].to_numpy(zero_copy_only=False), dtype=np.float64)
+             if out.weighted else np.ones(batch.num_rows))
+        for i, (f, lo, step, ratio) in enumerate(numeric):
+            x = np.ascontiguousarray(cols[f"h{i}"].to_numpy(zero_copy_only=False),
+                                     dtype=np.float64)
+            _bucket_sums(x, w, lo, step, ratio, HIST_BUCKETS, out.rows[f.name],
+                         out.weight[f.name])
+        if out.weighted:
+            for i, f in enumerate(levels):
+                idx = pc.index_in(cols[f"g{i}"], value_set=labels[f.name])
+                idx = idx.fill_null(-1).to_numpy(zero_copy_only=False)
+                known = idx >= 0
+                out.weight[f.name] += np.bincount(idx[known], weights=w[known],
+                                                  minlength=len(labels[f.name]))
+    return out
+
+
 def run_profile(source: Source, fields: list[Field], rules: list[Rule], where: str | None,
                 histograms: bool = True, weight_expr: str | None = None,
                 weight_name: str | None = None) -> DataProfile:
-    """Profile ``fields`` over ``source`` filtered by ``where``: one aggregate query, then
-    with ``histograms`` the value histograms (:func:`add_value_histograms`, Σ
-    ``weight_expr`` per value when given)."""
-    alias = {f.key: _alias(i) for i, f in enumerate(fields)}
-    inner = []
-    finite = []   # numeric fields again with non-finite values as NULL: no FILTER clauses
-    for f in fields:
-        cast = "DOUBLE" if f.kind == "numeric" else "VARCHAR"
-        inner.append(f"CAST({f.expr} AS {cast}) AS {alias[f.key]}")
-        if f.kind == "numeric":
-            a = alias[f.key]
-            finite.append(f"CASE WHEN isfinite({a}) THEN {a} END AS g{a}")
-    aggs = ["count(*)"]
-    layout: list[tuple[Field, str]] = []
-    for f in fields:
-        a = alias[f.key]
-        aggs.append(f"count(*) - count({a})")
-        layout.append((f, "nulls"))
-        if f.kind == "numeric":
-            g = f"g{a}"
-            aggs += [f"count({a}) - count({g})", f"min({g})", f"max({g})", f"avg({g})",
-                     f"stddev_pop({g})", f"bool_and({g} = floor({g}))"]
-            layout += [(f, k) for k in ("nonfinite", "min", "max", "mean", "sd", "integer")]
-        else:
-            aggs.append(f"histogram({a})")
-            layout.append((f, "hist"))
-    for r in rules:
-        cond = r.condition.format(**alias)
-        a = alias[r.field]
-        aggs += [f"count(*) FILTER (WHERE {cond})", f"min({a}, {EXAMPLES}) FILTER (WHERE {cond})"]
-        layout += [(r, "rule_n"), (r, "rule_ex")]
-    where_sql = f" WHERE {where}" if where else ""
-    text = (f"WITH r AS (SELECT {', '.join(inner)} FROM tallgam_source{where_sql}), "
-            f"s AS (SELECT *{''.join(', ' + x for x in finite)} FROM r) "
-            f"SELECT {', '.join(aggs)} FROM s")
-    row = source.fetchall(text)[0]
-    prof = DataProfile(rows=int(row[0]), weight_name=weight_name if weight_expr else None)
-    for f in fields:
-        _store(prof, f, _profile_of(f))
-    pending: dict[str, dict] = {}
-    for (item, what), value in zip(layout, row[1:]):
-        if what == "rule_n":
-            pending[item.key] = {"n": int(value or 0), "rule": item}
-        elif what == "rule_ex":
-            pending[item.key]["ex"] = list(value or [])
-            continue
-        p = _lookup(prof, item) if isinstance(item, Field) else None
-        if what == "hist":
-            _set_levels(p, value or {})
-        elif what == "integer":
-            p.integer = bool(value)
-        elif what in ("nulls", "nonfinite"):
-            setattr(p, what, int(value or 0))
-        elif what != "rule_n":
-            setattr(p, what, None if value is None else float(value))
-    for key, info in pending.items():
-        if info["n"]:
-            prof.violations[key] = (info["n"], info["ex"], info["rule"].message)
+    """Profile ``fields`` over ``source`` filtered by ``where``: the first scan
+    (:func:`profile_scan`), then with ``histograms`` the value histograms
+    (:func:`add_value_histograms`, Σ ``weight_expr`` per value when given)."""
+    prof = profile_scan(source, fields, rules, where).profile(fields, rules)
     if histograms:
         add_value_histograms(source, prof, fields, weight_expr, where, weight_name)
     return prof
@@ -422,63 +663,6 @@ def add_value_histograms(source: Source, prof: DataProfile, fields: list[Field],
                          weight_expr: str | None, where: str | None,
                          weight_name: str | None = None) -> None:
     """Rows (and Σ weight, with ``weight_expr``) per grid value of every numeric model
-    column and per level of every level column, in one grouped query; needs the minimum
+    column and per level of every level column (:func:`histogram_scan`); needs the minimum
     and maximum from :func:`run_profile`."""
-    prof.weight_name = weight_name if weight_expr else None
-    numeric = [f for f in fields if f.role is None and f.kind == "numeric"
-               and prof.columns[f.name].min is not None]
-    levels = [f for f in fields if f.role is None and f.kind == "levels"]
-    if not numeric and not levels:
-        return
-    keys = [f"h{i}" for i in range(len(numeric) + len(levels))]
-    grids = []
-    inner = []
-    for f, k in zip(numeric, keys):
-        fp = prof.columns[f.name]
-        lo, hi = float(fp.min), float(fp.max)
-        x = f"CAST({f.expr} AS DOUBLE)"
-        if geometric_grid(fp):  # steps of equal ratio: k = round(ln(x / lo) / ln-step)
-            step = float(np.log(hi / lo)) / HIST_BUCKETS
-            grids.append((lo, step, True))
-            inner.append(f"CASE WHEN isfinite({x}) THEN CAST(round(ln({x} / {lo!r}) / "
-                         f"{step!r}) AS BIGINT) END AS {k}")
-            continue
-        step = 1.0 if fp.integer and hi - lo <= HIST_BUCKETS else (hi - lo) / HIST_BUCKETS
-        step = step or 1.0
-        grids.append((lo, step, False))
-        inner.append(f"CASE WHEN isfinite({x}) THEN CAST(round(({x} - {lo!r}) / {step!r}) "
-                     f"AS BIGINT) END AS {k}")
-    for f, k in zip(levels, keys[len(numeric):]):
-        inner.append(f"CAST({f.expr} AS VARCHAR) AS {k}")
-    weight = f"CAST({weight_expr} AS DOUBLE)" if weight_expr else "1.0"
-    where_sql = f" WHERE {where}" if where else ""
-    sets = ", ".join(f"({k})" for k in keys)
-    text = (f"WITH s AS (SELECT {', '.join(inner)}, {weight} AS w "
-            f"FROM tallgam_source{where_sql}) "
-            f"SELECT grouping_id({', '.join(keys)}) AS gid, {', '.join(keys)}, count(*), "
-            f"sum(w) FROM s GROUP BY GROUPING SETS ({sets})")
-    rows = source.fetchall(text)
-    n = len(keys)
-    per: list[dict] = [{} for _ in keys]
-    for row in rows:
-        gid = row[0]
-        for i in range(n):
-            if not (gid >> (n - 1 - i)) & 1:  # this set groups by key i
-                if row[1 + i] is not None:
-                    per[i][row[1 + i]] = (int(row[-2]), float(row[-1] or 0.0))
-                break
-    for i, f in enumerate(numeric):
-        fp = prof.columns[f.name]
-        lo, step, ratio = grids[i]
-        ks = np.array(sorted(per[i]), dtype=np.int64)
-        grid = lo * np.exp(ks * step) if ratio else lo + ks * step
-        fp.values = np.minimum(tidy(grid), fp.max) if len(ks) else np.zeros(0)
-        fp.rows = np.array([per[i][k][0] for k in ks], dtype=np.float64)
-        if weight_expr:
-            fp.weight = np.array([per[i][k][1] for k in ks], dtype=np.float64)
-    if weight_expr:
-        for j, f in enumerate(levels):
-            lp = prof.columns[f.name]
-            got = per[len(numeric) + j]
-            lp.weight = np.array([got.get(str(lab), (0, 0.0))[1] for lab in lp.labels],
-                                 dtype=np.float64)
+    histogram_scan(source, prof, fields, weight_expr, where).apply(prof, weight_name)

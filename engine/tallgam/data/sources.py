@@ -114,11 +114,17 @@ class Source:
         text = f"SELECT {', '.join(select)} FROM {SOURCE_NAME}"
         if where:
             text += f" WHERE {where}"
+        yield from rebatch(self.stream(text, batch_rows), batch_rows)
+
+    def stream(self, text: str, batch_rows: int, doing: str = "reading"
+               ) -> Iterator[pa.RecordBatch]:
+        """Arrow batches (at most ``batch_rows`` rows) of SQL in which the source is called
+        ``tallgam_source``; a DuckDB error becomes the error of :meth:`_failure` (the file
+        at fault named, memory, interrupts), saying what was being done."""
         try:
-            reader = self.query(text).to_arrow_reader(batch_rows)
-            yield from rebatch(reader, batch_rows)
+            yield from self.query(text).to_arrow_reader(batch_rows)
         except duckdb.Error as exc:
-            raise self._failure(exc, text, "reading") from exc
+            raise self._failure(exc, text, doing) from exc
 
     def _failure(self, exc: duckdb.Error, text: str | None, doing: str) -> BaseException:
         """The error to raise for a DuckDB error: Ctrl-C stays an interrupt, running out of
@@ -242,11 +248,11 @@ def expand_paths(items: Sequence[str | os.PathLike]) -> tuple[list[str], bool]:
         elif _GLOB_CHARS & set(text):
             found = sorted(p for p in glob.glob(text, recursive=True) if os.path.isfile(p))
             if not found:
-                raise DataError(f"no files match {shorten(text)}")
+                raise DataError(f"no files match {clip(text, 300)!r}")
             files.extend(found)
         else:
             if not os.path.exists(text):
-                raise DataError(f"file {shorten(text)} does not exist")
+                raise DataError(f"file {clip(text, 300)!r} does not exist")
             files.append(text)
     return files, hive
 

@@ -136,6 +136,11 @@ class Family:
         make deviances of the two incomparable."""
         return False
 
+    def started_at(self, params: dict) -> Family:
+        """This family with its estimated parameters started at ``params`` (a previous
+        fit's :meth:`fitted_params`, for a refit); itself when it estimates none."""
+        return self
+
     def profiled(self) -> Profiled | None:
         """The parameter chosen by profile likelihood, or None."""
         return None

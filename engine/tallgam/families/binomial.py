@@ -6,6 +6,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
+from tallgam.families import fused
 from tallgam.families.base import Family, xlogy_ratio
 
 
@@ -43,3 +44,6 @@ class Binomial(Family):
 
     def start_mean(self, y_mean):
         return float(np.clip(y_mean, 0.01, 0.99))
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.BINOMIAL)

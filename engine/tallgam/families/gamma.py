@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import special
 
+from tallgam.families import fused
 from tallgam.families.base import Family
 
 
@@ -26,3 +27,6 @@ class Gamma(Family):
         return float(np.sum(
             special.xlogy(shape, shape * y / mu) - shape * y / mu - np.log(y)
             - special.gammaln(shape)))
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.POWER, power=2.0)

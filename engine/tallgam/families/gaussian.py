@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from tallgam.families import fused
 from tallgam.families.base import Family
 
 
@@ -33,3 +34,6 @@ class Gaussian(Family):
         n = sums["rows"]
         return float(-0.5 * (deviance / scale + n * np.log(2 * np.pi * scale)
                              - sums["log_weight"]))
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.POWER, power=0.0)

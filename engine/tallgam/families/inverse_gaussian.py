@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from tallgam.families import fused
 from tallgam.families.base import Family
 
 
@@ -23,3 +24,6 @@ class InverseGaussian(Family):
     def loglik(self, y, mu, w, scale):
         return float(-0.5 * np.sum(
             np.log(2 * np.pi * scale * y ** 3 / w) + w * (y - mu) ** 2 / (scale * y * mu * mu)))
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.POWER, power=3.0)

@@ -7,6 +7,7 @@ import numpy as np
 from scipy import special
 
 from tallgam.errors import SpecError
+from tallgam.families import fused
 from tallgam.families.base import Family, xlogy_ratio
 from tallgam.families.poisson import COUNT_RULES
 
@@ -63,6 +64,12 @@ class NegativeBinomial(Family):
         theta = float(np.clip(self.theta * np.exp(step), 1e-8, 1e8))
         return NegativeBinomial(theta, _estimate=self.estimate)
 
+    def started_at(self, params):
+        theta = params.get("theta")
+        if self.estimate and isinstance(theta, (int, float)) and theta > 0:
+            return NegativeBinomial(float(theta), _estimate=True)
+        return self
+
     def nuisance_moved(self, other):
         return abs(np.log(other.theta / self.theta)) > 1e-10
 
@@ -81,3 +88,6 @@ class NegativeBinomial(Family):
 
     def start_mu(self, y, w):
         return y + 0.1
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.NEGATIVE_BINOMIAL, theta=self.theta)

@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from tallgam.errors import SpecError
+from tallgam.families import fused
 from tallgam.families.base import Family, Profiled
 
 
@@ -81,3 +82,6 @@ class Tweedie(Family):
 
     def start_mu(self, y, w):
         return y + 0.1
+
+    def working_kernel(self, link):
+        return fused.kernel_for(self, link, fused.POWER, power=self.power)

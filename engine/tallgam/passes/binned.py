@@ -58,25 +58,25 @@ class ColumnGrid:
     def __post_init__(self):
         v = self.values
         self.mid = 0.5 * (v[1:] + v[:-1])
-        buckets = 8 * len(v)
+        buckets = 64 * len(v)
         span = float(v[-1] - v[0]) or 1.0
         self.scale = buckets / span
         starts = v[0] + np.arange(buckets) / self.scale
         self.lut = np.searchsorted(self.mid, starts).astype(np.int64)
 
     def codes(self, x: np.ndarray) -> np.ndarray:
+        x = np.ascontiguousarray(x, dtype=np.float64)
         if self.exact:
-            c = x - self.values[0]
-            if c.size and (c.min() < 0 or c.max() >= len(self.values)):
-                bad = int(np.count_nonzero((c < 0) | (c >= len(self.values))))
+            out = np.empty(len(x), dtype=np.int32)
+            bad = kernels.whole_codes(x, float(self.values[0]), len(self.values), out)
+            if bad:
                 raise DataError(f"column {self.column!r} has {bad} value(s) in this batch "
                                 f"outside the range its profile found ({self.values[0]:g} to "
                                 f"{self.values[-1]:g}); the data changed during the fit: "
                                 "fit again on a stable copy")
-            return c.astype(np.int32)
+            return out
         out = np.empty(len(x), dtype=np.int32)
-        kernels.grid_codes(np.ascontiguousarray(x, dtype=np.float64), self.mid,
-                           float(self.values[0]), self.scale, self.lut, out)
+        kernels.grid_codes(x, self.mid, float(self.values[0]), self.scale, self.lut, out)
         return out
 
     def describe(self) -> str:
@@ -218,35 +218,49 @@ class BinnedDesign:
         return Factor(b.label, col0, b.n_raw, m, False, idx, val)
 
     def codes(self, cols: dict) -> np.ndarray:
-        """Codes (n × F) of a batch's rows, one column per term (dense terms first)."""
+        """Codes (F × n, uint16 or int32) of a batch's rows, one row per term (dense terms
+        first)."""
         n = len(next(iter(cols.values()))) if cols else 0
-        out = np.empty((n, len(self.factors)), dtype=self.code_dtype)
+        out = np.empty((len(self.factors), n), dtype=self.code_dtype)
         col_codes = {key: g.codes(cols[key[0]]) for key, g in self.grids.items()}
         f = 0
         for b in self.design.dense_terms:
-            code = np.zeros(n, dtype=np.int64)
+            code = None
             for c, kind in self._inputs(b):
                 if kind == "numeric":
                     key = self._grid_of[(b.label, c)]
-                    code = code * len(self.grids[key].values) + col_codes[key]
+                    size, part = len(self.grids[key].values), col_codes[key]
                 else:
-                    lv = b.input_codes(cols, c)
-                    _no_unknown(lv, c)
-                    code = code * len(b.level_sets()[c]) + lv
-            out[:, f] = code
+                    part = b.input_codes(cols, c)
+                    _no_unknown(part, c)
+                    size = len(b.level_sets()[c])
+                code = part if code is None else code.astype(np.int64) * size + part
+            out[f] = 0 if code is None else code
             f += 1
         for b in self.design.level_terms:
             lv = b.codes(cols)
             _no_unknown(lv, b.inputs[0])
-            out[:, f] = lv
+            out[f] = lv
             f += 1
+        return out
+
+    @property
+    def narrow_dtypes(self) -> list[np.dtype]:
+        """Per term the narrowest unsigned type that holds its codes (for storage)."""
+        out = []
+        for f in self.factors:
+            for t in (np.uint8, np.uint16, np.uint32):
+                if f.m - 1 <= np.iinfo(t).max:
+                    out.append(np.dtype(t))
+                    break
         return out
 
     # ------------------------------------------------------------------ layout
     def _layout(self) -> None:
         F = len(self.factors)
         ms = [f.m for f in self.factors]
-        self.code_dtype = np.uint16 if max(ms, default=1) <= np.iinfo(np.uint16).max else np.int32
+        self.code_dtype = (np.dtype(np.uint16) if max(ms, default=1) <= np.iinfo(np.uint16).max
+                           else np.dtype(np.int32))
         self.vec_off = np.concatenate([[0], np.cumsum(ms)]).astype(np.int64)
         width = max(f.table_idx.shape[1] for f in self.factors)
         self.tab_off = self.vec_off[:-1].copy()
@@ -263,32 +277,45 @@ class BinnedDesign:
         cells = 0
         for a in range(F):
             for b in range(a + 1, F):
-                fa, fb = self.factors[a], self.factors[b]
-                if fa.m == 1 or fb.m == 1:
+                if self.factors[a].m == 1 or self.factors[b].m == 1:
                     continue  # a constant term (the intercept): from the per-code sums
-                if fa.m * fb.m <= self.tuning.cell_limit or (fa.level_term and fb.level_term):
-                    pairs.append((CROSS, a, b, cells, fb.m))
-                    cells += fa.m * fb.m
-                    continue
-                options = []
-                if not fa.level_term:   # code side b, a expanded
-                    options.append((fb.m * fa.n_raw, b, a))
-                if not fb.level_term:
-                    options.append((fa.m * fb.n_raw, a, b))
-                size, ca, cb = min(options)
-                if fa.level_term or fb.level_term or size <= 16 * self.tuning.cell_limit:
-                    pairs.append((EXPAND_B, ca, cb, cells, self.factors[cb].n_raw))
-                    cells += size
-                else:
-                    pairs.append((EXPAND_BOTH, a, b, cells, fb.n_raw))
-                    cells += fa.n_raw * fb.n_raw
+                mode, ca, cb, size = self._pair_plan(a, b)
+                stride = (self.factors[cb].m if mode == CROSS
+                          else self.factors[cb].n_raw)
+                pairs.append((mode, ca, cb, cells, stride))
+                cells += size
         self.pairs = pairs
         self.cells = cells
+        # stored rows are written in the order of the largest term's codes: the pairs with
+        # that term then meet its table rows one after another
+        big = int(np.argmax(ms)) if ms else 0
+        self.sort_key = big if ms and ms[big] > 256 else None
         arr = np.array(pairs, dtype=np.int64).reshape(-1, 5)
         self.pair_mode, self.pair_a, self.pair_b = arr[:, 0].copy(), arr[:, 1].copy(), \
             arr[:, 2].copy()
         self.pair_off, self.pair_stride = arr[:, 3].copy(), arr[:, 4].copy()
         self._matrices: dict[int, np.ndarray] = {}
+
+    def _pair_plan(self, a: int, b: int) -> tuple[int, int, int, int]:
+        """How a pair of terms is summed: (mode, code side, other side, cells). The least
+        work per row among the ways whose table fits ``tuning.cell_limit`` cells (so it
+        stays in a core's cache while the rows stream past); when none fits, the smallest
+        table. Two level terms always get a cross-table (the dense stage keeps it anyway)."""
+        fa, fb = self.factors[a], self.factors[b]
+        wa, wb = fa.table_idx.shape[1], fb.table_idx.shape[1]
+        if fa.level_term and fb.level_term:
+            return CROSS, a, b, fa.m * fb.m
+        ways = [(1, fa.m * fb.m, CROSS, a, b)]
+        if not fb.level_term:
+            ways.append((wb, fa.m * fb.n_raw, EXPAND_B, a, b))
+        if not fa.level_term:
+            ways.append((wa, fb.m * fa.n_raw, EXPAND_B, b, a))
+        if not (fa.level_term or fb.level_term):
+            ways.append((wa * wb, fa.n_raw * fb.n_raw, EXPAND_BOTH, a, b))
+        fits = [w for w in ways if w[1] <= self.tuning.cell_limit]
+        work, size, mode, ca, cb = (min(fits) if fits
+                                    else min(ways, key=lambda w: (w[1], w[0])))
+        return mode, ca, cb, size
 
     def matrix(self, f: int) -> np.ndarray:
         if f not in self._matrices:
@@ -317,11 +344,50 @@ class BinnedDesign:
         binned = [g.describe() for g in self.grids.values()]
         return ["binned passes: " + "; ".join(binned)] if binned else []
 
+    def coarseness(self) -> dict[str, float]:
+        """Per binned (not exactly coded) column, the largest move of a value as a share of
+        the knot interval it lies in, over the terms that read the column: how much a row's
+        design can change by binning (a cubic B-spline changes by at most about half this
+        share of its height)."""
+        out: dict[str, float] = {}
+        for b in self.design.bases:
+            for c, _kind in self._inputs(b):
+                key = self._grid_of.get((b.label, c))
+                if key is None or self.grids[key].exact:
+                    continue
+                v = self.grids[key].values
+                knots = b.knots_along(c)
+                if knots is None or len(knots) < 2 or len(v) < 2:
+                    share = 0.0
+                else:
+                    mids = 0.5 * (v[1:] + v[:-1])
+                    j = np.clip(np.searchsorted(knots, mids) - 1, 0, len(knots) - 2)
+                    share = float(np.max(0.5 * np.diff(v) / np.diff(knots)[j]))
+                out[c] = max(out.get(c, 0.0), share)
+        return out
+
+    @property
+    def exact(self) -> bool:
+        """True when every numeric input is coded exactly (the passes are exact)."""
+        return all(g.exact for g in self.grids.values())
+
+
     # ------------------------------------------------------------------ pass interface
     def read(self, cols: dict):
-        """A batch's rows as one block of codes."""
+        """A batch's rows as one block of codes (F × n)."""
         codes = self.codes(cols)
-        yield slice(0, codes.shape[0]), codes
+        yield slice(0, codes.shape[1]), codes
+
+    def order(self, codes: np.ndarray) -> np.ndarray | None:
+        """The order in which to keep a block's rows (by the largest term's codes, so that
+        its pairs meet their table rows one after another), or None."""
+        if self.sort_key is None or codes.shape[1] < 2:
+            return None
+        return np.argsort(codes[self.sort_key], kind="stable")
+
+    def reordered(self, codes: np.ndarray, order: np.ndarray) -> np.ndarray:
+        """A block's codes with its rows in ``order``."""
+        return np.take(codes, order, axis=1)
 
     def pass_coefficients(self, beta: np.ndarray) -> np.ndarray:
         """Each term's value per code, flat (Σ m): X̄_f β_f."""
@@ -335,8 +401,57 @@ class BinnedDesign:
     def predict(self, codes: np.ndarray, coef: np.ndarray, out: np.ndarray) -> None:
         kernels.binned_predictor(codes, coef, self.vec_off, out)
 
-    def accumulator(self, threads: int) -> BinnedAccumulator:
+    def accumulator(self, threads: int, blas_width: int = 0) -> BinnedAccumulator:
         return BinnedAccumulator(self, threads)
+
+
+def choose_passes(design: Design, profile: DataProfile, tuning: Tuning,
+                  points: int | None) -> tuple[BinnedDesign | None, str]:
+    """Binned or exact passes for a fit, and why. ``points`` None chooses: exact below
+    ``tuning.binned_from_rows`` rows; binned when every numeric input is coded exactly
+    (they are then exact too, and faster), or when rounding the continuous inputs to
+    ``DEFAULT_BIN_POINTS`` (then up to ``tuning.max_bin_points``) grid values moves no
+    value by more than ``tuning.bin_move_share`` of the knot interval it lies in; exact
+    otherwise. A given number of points (binned=True or a number) is obeyed."""
+    if points is not None:
+        binned = BinnedDesign(design, profile, points, tuning)
+        return binned, f"binned passes (asked for): {_coding(binned)}"
+    rows = profile.rows
+    if rows < tuning.binned_from_rows:
+        return None, (f"exact passes, chosen automatically: {rows:,} rows (binned passes are "
+                      f"chosen from {tuning.binned_from_rows:,})")
+    n = DEFAULT_BIN_POINTS
+    worst: tuple[str, float] = ("", 0.0)
+    while True:
+        binned = BinnedDesign(design, profile, n, tuning)
+        if binned.exact:
+            return binned, ("binned passes, chosen automatically: every numeric input takes "
+                            "whole values, coded exactly (the passes are exact)")
+        share = binned.coarseness()
+        worst = max(share.items(), key=lambda kv: kv[1])
+        if worst[1] <= tuning.bin_move_share:
+            return binned, (f"binned passes, chosen automatically: {rows:,} rows; "
+                            f"{_coding(binned)}; no value moves by more than "
+                            f"{100 * worst[1]:.1f}% of its knot interval (bound "
+                            f"{100 * tuning.bin_move_share:.0f}%)")
+        if 2 * n > tuning.max_bin_points:
+            break
+        n *= 2
+    return None, (f"exact passes, chosen automatically: binning {worst[0]!r} to {n} values "
+                  f"would move values by up to {100 * worst[1]:.0f}% of a knot interval "
+                  f"(bound {100 * tuning.bin_move_share:.0f}%)")
+
+
+def _coding(binned: BinnedDesign) -> str:
+    exact = [g.column for g in binned.grids.values() if g.exact]
+    rounded = [f"{g.column} ({len(g.values)} values)" for g in binned.grids.values()
+               if not g.exact]
+    parts = []
+    if exact:
+        parts.append("exact: " + ", ".join(dict.fromkeys(exact)))
+    if rounded:
+        parts.append("rounded: " + ", ".join(rounded))
+    return "; ".join(parts) if parts else "level inputs only"
 
 
 def _no_unknown(codes: np.ndarray, column: str) -> None:

@@ -5,11 +5,18 @@ file, runs of whole row groups. A pass submits one task per partition; the task 
 partition with DuckDB on the worker, runs :func:`~tallgam.passes.run.working_pass` (a black box)
 and returns the partial :class:`~tallgam.passes.state.PassState`. The client merges the states in
 partition order, so the sum, and therefore the fit, does not depend on which worker ran
-which partition, nor on the order in which they finished. The profile pass and the dense
-stage stay on the client.
+which partition, nor on the order in which they finished. The profile's two scans and the
+sample a large fit starts from are partition tasks as well, their sums merged on the
+client; the dense stage stays on the client.
 
-Tasks are pure functions of (partition, plan): when a worker dies, Dask runs its tasks
-again elsewhere and the pass ends with the same state. The plan is handed to the cluster
+A binned fit keeps on each worker a scratch copy of the coded rows of the partitions that
+worker ran in the first pass (:func:`working_task`); later passes are sent to that worker
+and read the copy, so the fit reads its data once. The copies are removed when the fit
+ends, whatever way it ends (:func:`drop_worker_scratch` on every worker).
+
+Tasks are functions of (partition, plan) whose result does not depend on where they run:
+when a worker dies, Dask runs its tasks again elsewhere (reading the data again where no
+copy is held) and the pass ends with the same state. The plan is handed to the cluster
 once per pass as the result of a small task, so Dask can recompute it too when the worker
 holding it dies.
 
@@ -228,18 +235,113 @@ def _value(x):
     return x
 
 
-def working_task(part: Partition, plan, threads: int | None):
-    """One partition's :class:`~tallgam.passes.state.PassState` (runs on a worker)."""
+# scratch copies of partitions' coded rows, per worker process: (fit, partition) -> Scratch
+_SCRATCH: dict = {}
+_SCRATCH_LOCK = threading.Lock()
+
+
+def _worker_scratch(scratch_id: str | None, part: Partition, plan, rows_hint: int | None):
+    """The scratch copy of ``part``'s coded rows on this worker that a binned pass reads
+    (complete) or writes (new), as the local runner keeps one for the whole source; None
+    when the pass is not binned or a copy would not pay (a single pass)."""
+    if scratch_id is None or plan.binned is None:
+        return None
+    from tallgam.data.scratch import ScratchPolicy, prepare
+
+    key = (scratch_id, part.index)
+    with _SCRATCH_LOCK:
+        current = _SCRATCH.pop(key, None)
+    if not plan.more_passes and (current is None or not current.complete):
+        if current is not None:
+            current.remove()
+        return None
+    folder = None
+    with contextlib.suppress(Exception):  # a worker's own folder, if it has one
+        folder = _distributed().get_worker().local_directory
+    scratch = prepare(current, ScratchPolicy(folder=folder), plan, rows_hint)
+    if scratch is not None:
+        with _SCRATCH_LOCK:
+            _SCRATCH[key] = scratch
+    return scratch
+
+
+def drop_worker_scratch(scratch_id: str) -> int:
+    """Remove this worker's scratch copies of a fit (run on every worker when the fit ends,
+    whatever way it ends); returns how many there were."""
+    with _SCRATCH_LOCK:
+        keys = [k for k in _SCRATCH if k[0] == scratch_id]
+        copies = [_SCRATCH.pop(k) for k in keys]
+    for c in copies:
+        c.remove()
+    return len(copies)
+
+
+def _worker_address() -> str | None:
+    with contextlib.suppress(Exception):
+        return _distributed().get_worker().address
+    return None
+
+
+def working_task(part: Partition, plan, threads: int | None, scratch_id: str | None = None,
+                 rows_hint: int | None = None):
+    """One partition's :class:`~tallgam.passes.state.PassState` and the worker that ran it
+    (runs on a worker). A binned pass of a fit with ``scratch_id`` reads the partition's
+    coded rows from this worker's scratch copy when it holds them, else reads the data and
+    writes the copy."""
     from tallgam.passes.run import working_pass
 
     with _task_threads(threads) as n:
+        scratch = _worker_scratch(scratch_id, part, plan, rows_hint)
+        source = None if scratch is not None and scratch.complete else open_partition(part, n)
+        try:
+            state = working_pass(source, plan, scratch=scratch)
+        except TallgamError as exc:
+            raise _in_partition(part, exc) from exc
+        finally:
+            if source is not None:
+                source.connection.close()
+            if scratch is not None and not scratch.complete:
+                with _SCRATCH_LOCK:
+                    _SCRATCH.pop((scratch_id, part.index), None)
+                scratch.remove()
+        return state, _worker_address()
+
+
+def _partition_call(part: Partition, threads: int | None, call):
+    with _task_threads(threads) as n:
         source = open_partition(part, n)
         try:
-            return working_pass(source, plan)
+            return call(source)
         except TallgamError as exc:
             raise _in_partition(part, exc) from exc
         finally:
             source.connection.close()
+
+
+def profile_task(part: Partition, shared, threads: int | None):
+    """One partition's first profile scan (:class:`~tallgam.data.profile.ProfileSums`)."""
+    from tallgam.data.profile import profile_scan
+
+    fields, rules, where = shared
+    return _partition_call(part, threads,
+                           lambda source: profile_scan(source, fields, rules, where))
+
+
+def histogram_task(part: Partition, shared, threads: int | None):
+    """One partition's histogram scan (:class:`~tallgam.data.profile.HistogramSums`)."""
+    from tallgam.data.profile import histogram_scan
+
+    profile, fields, weight_expr, where = shared
+    return _partition_call(part, threads, lambda source: histogram_scan(
+        source, profile, fields, weight_expr, where))
+
+
+def sample_task(part: Partition, shared, threads: int | None):
+    """The rows of one partition that fall in a fit's sample (an Arrow table)."""
+    from tallgam.data.inputs import sample_rows
+
+    inputs, share = shared
+    return _partition_call(part, threads, lambda source: sample_rows(source, inputs, share))
 
 
 def loglik_task(part: Partition, plan, scale: float, threads: int | None):
@@ -391,18 +493,25 @@ class ClusterSession:
                 "filesystem or mounted object storage); " + "; ".join(problems))
 
     def run(self, fn, parts: Sequence[Partition], shared, args: tuple, kind: str,
-            on_result=None, abort=None) -> list:
+            on_result=None, abort=None, placement: dict | None = None) -> list:
         """Submit ``fn(part, shared, *args)`` for every partition; return the results in
         partition order. ``shared`` (the pass's plan) goes to the cluster once, as the
-        result of a task. ``on_result(index, result)`` is called as results arrive. When a
-        task fails, ``abort()`` (if given) is called and the other tasks are waited for
-        (so none is still writing when the caller cleans up), then the error is raised."""
+        result of a task. ``placement`` maps a partition index to the worker that should
+        run it (another runs it when that one is gone). ``on_result(index, result)`` is
+        called as results arrive. When a task fails, ``abort()`` (if given) is called and
+        the other tasks are waited for (so none is still writing when the caller cleans
+        up), then the error is raised."""
         distributed = _distributed()
         client = self.client
         tag = f"{kind}-{uuid.uuid4().hex[:10]}"
         shared_f = client.submit(_value, shared, key=f"tallgam-plan-{tag}")
+        placement = placement or {}
         futures = [client.submit(fn, part, shared_f, *args,
-                                 key=f"tallgam-{tag}-{part.index:05d}") for part in parts]
+                                 key=f"tallgam-{tag}-{part.index:05d}",
+                                 workers=[placement[part.index]] if part.index in placement
+                                 else None,
+                                 allow_other_workers=part.index in placement)
+                   for part in parts]
         index = {f.key: i for i, f in enumerate(futures)}
         results: list = [None] * len(futures)
         try:
@@ -441,18 +550,25 @@ def _slug(task: str) -> str:
 class ClusterPasses:
     """Runs the data passes of a fit on a Dask cluster (the interface of
     :class:`~tallgam.passes.run.LocalPasses`): one task per partition, states merged in
-    partition order on the client."""
+    partition order on the client. The profile scans and a sample start's sample are
+    partition tasks too. With ``scratch``, every worker keeps a scratch copy of the coded
+    rows of the partitions it ran in a binned fit's first pass, and later passes go to
+    that worker (another reads the data again if it is gone), so a fit reads its data
+    once; the copies are removed when the fit ends."""
 
     def __init__(self, session: ClusterSession, parts: list[Partition], callback=None,
-                 threads: int | None = None):
+                 threads: int | None = None, scratch: bool = True):
         self.session = session
         self.parts = parts
         self.callback = callback or (lambda event: None)
         self.threads = threads
+        self.scratch_id = f"tallgam-{uuid.uuid4().hex[:12]}" if scratch else None
+        self.placement: dict[int, str] = {}   # partition -> worker holding its copy
+        self.rows: int | None = None          # rows of the data (from the profile)
 
     @classmethod
     def open(cls, cluster, data, source: Source, callback=None, threads: int | None = None,
-             min_rows: int | None = None) -> ClusterPasses:
+             min_rows: int | None = None, scratch: bool = True) -> ClusterPasses:
         """Partition ``data`` (a single Parquet file into runs of row groups of at least
         ``min_rows`` rows), connect, and check that every worker sees every file."""
         parts = partitions_of(data, source, min_rows=min_rows)
@@ -462,9 +578,9 @@ class ClusterPasses:
         except BaseException:
             session.close()
             raise
-        return cls(session, parts, callback, threads)
+        return cls(session, parts, callback, threads, scratch)
 
-    def _run(self, fn, plan, args, task, total, kind):
+    def _run(self, fn, plan, args, task, total, kind, placement=None):
         self.callback(Event("start", task, total=total))
         done = [0]
 
@@ -472,15 +588,42 @@ class ClusterPasses:
             done[0] += _rows_of(result)
             self.callback(Event("advance", task, rows=done[0], total=total))
         results = self.session.run(fn, self.parts, plan, args, f"{kind}-{_slug(task)}",
-                                   advance)
+                                   advance, placement=placement)
         self.callback(Event("end", task, rows=done[0], total=total))
         return results
 
+    def _merged(self, fn, shared, kind: str):
+        parts = self.session.run(fn, self.parts, shared, (self.threads,), kind)
+        out = parts[0]
+        for p in parts[1:]:
+            out = out.merge(p)
+        return out
+
+    def profile_sums(self, fields, rules, where):
+        sums = self._merged(profile_task, (fields, rules, where), "profile")
+        self.rows = sums.rows
+        return sums
+
+    def histogram_sums(self, profile, fields, weight_expr, where):
+        return self._merged(histogram_task, (profile, fields, weight_expr, where),
+                            "histograms")
+
+    def sample(self, inputs, share: float):
+        import pyarrow as pa
+
+        tables = self.session.run(sample_task, self.parts, (inputs, share), (self.threads,),
+                                  "sample")
+        return pa.concat_tables(tables)
+
     def working(self, plan, task: str, total: int | None):
-        states = self._run(working_task, plan, (self.threads,), task, total, "working")
-        merged = states[0]
-        for s in states[1:]:
-            merged = merged.merge(s)
+        hint = None if self.rows is None else -(-self.rows // len(self.parts))
+        results = self._run(working_task, plan, (self.threads, self.scratch_id, hint), task,
+                            total, "working", placement=self.placement)
+        merged = None
+        for part, (state, worker) in zip(self.parts, results):
+            if plan.binned is not None and self.scratch_id is not None and worker:
+                self.placement[part.index] = worker
+            merged = state if merged is None else merged.merge(state)
         return merged
 
     def loglik(self, plan, scale: float, task: str, total: int | None) -> float:
@@ -491,12 +634,19 @@ class ClusterPasses:
         return out
 
     def close(self) -> None:
-        self.session.close()
+        try:
+            if self.scratch_id is not None:
+                with contextlib.suppress(Exception):  # a worker that is gone took its copies
+                    self.session.client.run(drop_worker_scratch, self.scratch_id)
+        finally:
+            self.session.close()
 
 
 def _rows_of(result) -> int:
     if isinstance(result, tuple):
-        return int(result[1])
+        if isinstance(result[1], (int, float)):
+            return int(result[1])
+        result = result[0]
     scalars = getattr(result, "scalars", None)
     if scalars is not None:
         return int(scalars["rows"])

@@ -92,6 +92,10 @@ class Design:
         """A batch's rows in the blocks the kernels take."""
         return self.blocks(cols)
 
+    def order(self, enc: Encoded) -> None:
+        """Rows keep their order (see :meth:`tallgam.passes.binned.BinnedDesign.order`)."""
+        return None
+
     def pass_coefficients(self, beta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """β split for the kernels: dense group, level group."""
         return (np.ascontiguousarray(beta[:self.pd]), np.ascontiguousarray(beta[self.pd:]))
@@ -100,10 +104,10 @@ class Design:
         """out += X β for one block (``coef`` from :meth:`pass_coefficients`)."""
         kernels.linear_predictor(enc.idx, enc.val, enc.lev, coef[0], coef[1], out)
 
-    def accumulator(self, threads: int):
+    def accumulator(self, threads: int, blas_width: int = 4):
         from tallgam.passes.state import Accumulator
 
-        return Accumulator(self.pd, self.level_sizes, threads)
+        return Accumulator(self.pd, self.level_sizes, threads, blas_width)
 
     def _encode_block(self, cols, codes, start, stop) -> Encoded:
         n = stop - start

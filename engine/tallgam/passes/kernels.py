@@ -19,7 +19,8 @@ import numba
 
 
 @numba.njit(cache=True, parallel=True)
-def accumulate(idx, val, lev, w, r, wc, dense, cross, diag, rhs_d, rhs_l, col_d, col_l):
+def accumulate(idx, val, lev, w, r, wc, dense, cross, diag, rhs_d, rhs_l, col_d, col_l,
+               with_dense):
     """Add one block of rows to per-thread normal-equation accumulators.
 
     Parameters
@@ -27,13 +28,15 @@ def accumulate(idx, val, lev, w, r, wc, dense, cross, diag, rhs_d, rhs_l, col_d,
     idx, val, lev : encoded rows (see module docstring).
     w : (n,) working weights.  r : (n,) working residuals z - (η - offset) at the anchor β.
     wc : (n,) constraint weights (exposure, else prior weights): the weighted column sums
-        Σ wc·x that fix the identifiability constraints.
-    dense : (T, pd, pd) upper triangle of XᵀWX within the dense group.
+        Σ wc·x that fix the identifiability constraints; length 0: not summed.
+    dense : (T, pd, pd) upper triangle of XᵀWX within the dense group (only when
+        ``with_dense``; else the caller forms it, see :func:`dense_rows`).
     cross : (T, L, pd) level-by-dense cross products.  diag : (T, L) level block diagonal.
     rhs_d : (T, pd), rhs_l : (T, L) XᵀW r.  col_d : (T, pd), col_l : (T, L) Xᵀwp.
     """
     n, q = idx.shape
     m = lev.shape[1]
+    with_wc = wc.shape[0] == n
     n_threads = dense.shape[0]
     chunk = (n + n_threads - 1) // n_threads
     for t in numba.prange(n_threads):
@@ -44,28 +47,45 @@ def accumulate(idx, val, lev, w, r, wc, dense, cross, diag, rhs_d, rhs_l, col_d,
         for i in range(lo, hi):
             wi = w[i]
             wri = wi * r[i]
-            wpi = wc[i]
+            wpi = wc[i] if with_wc else 0.0
             for a in range(q):
                 ia = idx[i, a]
                 va = val[i, a]
-                wva = wi * va
                 rhs_d[t, ia] += wri * va
-                col_d[t, ia] += wpi * va
-                for b in range(a, q):
-                    ib = idx[i, b]
-                    if ia <= ib:
-                        dt[ia, ib] += wva * val[i, b]
-                    else:
-                        dt[ib, ia] += wva * val[i, b]
+                if with_wc:
+                    col_d[t, ia] += wpi * va
+                if with_dense:
+                    wva = wi * va
+                    for b in range(a, q):
+                        ib = idx[i, b]
+                        if ia <= ib:
+                            dt[ia, ib] += wva * val[i, b]
+                        else:
+                            dt[ib, ia] += wva * val[i, b]
             for k in range(m):
                 lk = lev[i, k]
                 if lk < 0:
                     continue
                 diag[t, lk] += wi
                 rhs_l[t, lk] += wri
-                col_l[t, lk] += wpi
+                if with_wc:
+                    col_l[t, lk] += wpi
                 for a in range(q):
                     ct[lk, idx[i, a]] += wi * val[i, a]
+
+
+@numba.njit(cache=True, parallel=True)
+def dense_rows(idx, val, sw, out):
+    """out[i] = √wᵢ·xᵢ over the dense group (rows i < n of ``out``, (≥ n) × pd): the block
+    whose Gram matrix BLAS forms (``sw`` (n,) the square roots of the working weights)."""
+    n, q = idx.shape
+    pd = out.shape[1]
+    for i in numba.prange(n):
+        for j in range(pd):
+            out[i, j] = 0.0
+        s = sw[i]
+        for a in range(q):
+            out[i, idx[i, a]] += s * val[i, a]
 
 
 @numba.njit(cache=True)
@@ -173,69 +193,98 @@ def quadratic_form_rows_eliminated(idx, val, lev, pd, position, cov, e_start, e_
 
 
 # --------------------------------------------------------------------------- binned
-# Rows arrive as codes (n × F): for every term, the row of that term's table of distinct
-# design rows (see :mod:`tallgam.discrete`); vec_off[f] is the first per-code slot of term f.
+# Rows arrive as codes, one row of ``codes`` (F × n) per term: the row of that term's table
+# of distinct design rows (see :mod:`tallgam.passes.binned`); vec_off[f] is the first
+# per-code slot of term f. Loops run term by term (and pair by pair) over a thread's rows,
+# so one pair's table stays in cache while the rows stream past it.
+
+BINNED_BLOCK = 65_536  # rows a thread takes through all pairs before the next block
 
 
 @numba.njit(cache=True, parallel=True)
 def accumulate_binned(codes, w, r, wc, vec_off, mode, pa, pb, off, stride, f_start,
-                        tab_off, tab_idx, tab_val, tab_width, cells, vec):
-    """Add one block of coded rows to per-thread cross-tables.
+                      tab_off, tab_idx, tab_val, tab_width, cells, vec):
+    """Add one block of coded rows (``codes`` F × n) to per-thread cross-tables.
 
-    vec : (T, 3, Σm) per-code sums of w, w·r and wc.  cells : (T, C) the pair tables: mode
+    vec : (T, 3, Σm) per-code sums of w, w·r and wc (wc of length 0: not summed, e.g. in
+    passes after the first, whose column sums are not used).  cells : (T, C) the pair tables: mode
     0 a cross-table C[code_a, code_b] += w (stride m_b); mode 1 the code of a against the
     expanded design row of b, H[code_a, j] += w·x_bj (stride n_raw_b); mode 2 both expanded,
     F[i, j] += w·x_ai·x_bj (stride n_raw_b). Threads own contiguous row ranges.
     """
-    n, F = codes.shape
+    F, n = codes.shape
     P = mode.shape[0]
+    with_wc = wc.shape[0] == n
     n_threads = cells.shape[0]
     chunk = (n + n_threads - 1) // n_threads
     for t in numba.prange(n_threads):
         lo = t * chunk
         hi = min(n, lo + chunk)
         ct = cells[t]
-        vt = vec[t]
-        for i in range(lo, hi):
-            wi = w[i]
-            wri = wi * r[i]
-            wpi = wc[i]
+        v0 = vec[t, 0]
+        v1 = vec[t, 1]
+        v2 = vec[t, 2]
+        for s in range(lo, hi, BINNED_BLOCK):
+            e = min(hi, s + BINNED_BLOCK)
             for f in range(F):
-                j = vec_off[f] + codes[i, f]
-                vt[0, j] += wi
-                vt[1, j] += wri
-                vt[2, j] += wpi
+                cf = codes[f]
+                base = vec_off[f]
+                if with_wc:
+                    for i in range(s, e):
+                        j = base + cf[i]
+                        v0[j] += w[i]
+                        v1[j] += w[i] * r[i]
+                        v2[j] += wc[i]
+                else:
+                    for i in range(s, e):
+                        j = base + cf[i]
+                        v0[j] += w[i]
+                        v1[j] += w[i] * r[i]
             for p in range(P):
                 a = pa[p]
                 b = pb[p]
-                ka = codes[i, a]
-                kb = codes[i, b]
+                ca = codes[a]
+                cb = codes[b]
+                o = off[p]
+                st = stride[p]
                 md = mode[p]
                 if md == 0:
-                    ct[off[p] + ka * stride[p] + kb] += wi
+                    for i in range(s, e):
+                        ct[o + ca[i] * st + cb[i]] += w[i]
                 elif md == 1:
-                    rb = tab_off[b] + kb
-                    base = off[p] + ka * stride[p] - f_start[b]
-                    for y in range(tab_width[b]):
-                        ct[base + tab_idx[rb, y]] += wi * tab_val[rb, y]
+                    tb = tab_off[b]
+                    wb = tab_width[b]
+                    o -= f_start[b]
+                    for i in range(s, e):
+                        rb = tb + cb[i]
+                        base = o + ca[i] * st
+                        wi = w[i]
+                        for y in range(wb):
+                            ct[base + tab_idx[rb, y]] += wi * tab_val[rb, y]
                 else:
-                    ra = tab_off[a] + ka
-                    rb = tab_off[b] + kb
-                    for x in range(tab_width[a]):
-                        wa = wi * tab_val[ra, x]
-                        base = off[p] + (tab_idx[ra, x] - f_start[a]) * stride[p] - f_start[b]
-                        for y in range(tab_width[b]):
-                            ct[base + tab_idx[rb, y]] += wa * tab_val[rb, y]
+                    ta = tab_off[a]
+                    tb = tab_off[b]
+                    wa_ = tab_width[a]
+                    wb = tab_width[b]
+                    for i in range(s, e):
+                        ra = ta + ca[i]
+                        rb = tb + cb[i]
+                        wi = w[i]
+                        for x in range(wa_):
+                            wa = wi * tab_val[ra, x]
+                            base = o + (tab_idx[ra, x] - f_start[a]) * st - f_start[b]
+                            for y in range(wb):
+                                ct[base + tab_idx[rb, y]] += wa * tab_val[rb, y]
 
 
 @numba.njit(cache=True, parallel=True)
 def binned_predictor(codes, coef, vec_off, out):
-    """out[i] += Σ_f coef[vec_off[f] + codes[i, f]]  (shape (n,))."""
-    n, F = codes.shape
+    """out[i] += Σ_f coef[vec_off[f] + codes[f, i]]  (codes F × n, out (n,))."""
+    F, n = codes.shape
     for i in numba.prange(n):
         s = 0.0
         for f in range(F):
-            s += coef[vec_off[f] + codes[i, f]]
+            s += coef[vec_off[f] + codes[f, i]]
         out[i] += s
 
 
@@ -260,3 +309,20 @@ def grid_codes(x, mid, lo, scale, lut, out):
         while k > 0 and mid[k - 1] >= v:
             k -= 1
         out[i] = k
+
+
+@numba.njit(cache=True, parallel=True)
+def whole_codes(x, lo, m, out):
+    """out[i] = x[i] − lo for whole-number values in [lo, lo + m); returns how many values
+    fall outside (their codes are 0)."""
+    n = x.shape[0]
+    bad = 0
+    for i in numba.prange(n):
+        c = x[i] - lo
+        if c >= 0.0 and c < m:
+            out[i] = int(c)
+        else:
+            out[i] = 0
+            bad += 1
+    return bad
+

@@ -14,14 +14,16 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
-from tallgam.data.inputs import WC, Inputs, O, W, Y
+from tallgam.data.inputs import WC, Inputs, O, W, Y, sample_rows
+from tallgam.data.profile import histogram_scan, profile_scan
 from tallgam.data.sources import Source
 from tallgam.errors import FitError
+from tallgam.families.fused import FUSED_SUMS
 from tallgam.passes.design import Design, batch_columns
 from tallgam.passes.state import PassState
 from tallgam.progress import Event
 
-LOGLIK_STEP = 0.01    # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
+LOGLIK_STEP = 0.001   # δ: the pass evaluates the log-likelihood at φ·e^(−δ), φ, φ·e^(+δ)
 
 
 @dataclass
@@ -43,6 +45,10 @@ class PassPlan:
     binned: object = None     # a tallgam.passes.binned.BinnedDesign: run on coded rows
     more_passes: bool = True  # False when this pass is known to be the only one
     fused: bool = True        # use the family's fused working-model loop when it has one
+    values: object = None     # a tallgam.data.scratch.RowValues: how stored rows keep y, w, o
+    start: StartModel | None = None  # with beta None: start from this fit's predictor
+    column_sums: bool = True  # sum the constraint weights per column (the first pass)
+    blas_width: int = 4       # see tallgam.options.Tuning
 
     @property
     def layout(self):
@@ -58,10 +64,22 @@ class LocalPasses:
     there in later passes instead of the source; :meth:`close` removes the folder."""
 
     def __init__(self, source: Source, callback=None, scratch_policy=None):
+        callback = callback or _quiet
         self.source = source
         self.callback = callback
         self.policy = scratch_policy
         self.scratch = None
+
+    # the profile's scans and the sample of a sample start (the cluster runner does the same
+    # on its workers)
+    def profile_sums(self, fields, rules, where):
+        return profile_scan(self.source, fields, rules, where)
+
+    def histogram_sums(self, profile, fields, weight_expr, where):
+        return histogram_scan(self.source, profile, fields, weight_expr, where)
+
+    def sample(self, inputs, share: float):
+        return sample_rows(self.source, inputs, share)
 
     def _scratch(self, plan: PassPlan, rows: int | None):
         if plan.binned is None or self.policy is None:
@@ -93,13 +111,15 @@ def _quiet(event) -> None:
 
 def row_blocks(source: Source, plan: PassPlan, scratch=None):
     """The rows of a pass, block by block, in kernel form: yields ``(y, w, o, wc, block,
-    done)`` where w, o, wc are None when the model has no weights, offset or separate
-    constraint weights, and ``done`` is the count of rows read when the block ends a batch
-    (else None). Rows come from the scratch copy when it is complete, else from the source
-    (and are written to the scratch copy when one is being made)."""
+    done, start)`` where w, o, wc are None when the model has no weights, offset or separate
+    constraint weights, ``done`` is the count of rows read when the block ends a batch
+    (else None) and ``start`` the previous fit's X·β for the block's rows when the plan
+    starts from one (else None). Rows come from stored rows when they are complete, else
+    from the source (and are appended to ``scratch`` when one is being made)."""
     inputs, layout = plan.inputs, plan.layout
     if scratch is not None and scratch.complete:
-        yield from scratch.blocks(plan.batch_rows)
+        for block in scratch.blocks(plan.batch_rows):
+            yield (*block, None)
         return
     done = 0
     try:
@@ -109,6 +129,7 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
             w_all = cols[W] if inputs.has_weights else None
             o_all = cols[O] if inputs.has_offset else None
             wc_all = cols[WC] if inputs.has_cweights else None
+            start_all = plan.start.linear_predictor(cols) if plan.start is not None else None
             done += batch.num_rows
             parts = list(layout.read(cols)) if scratch is not None else layout.read(cols)
             last = None
@@ -116,11 +137,17 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
                 if last is not None:
                     yield last
                 last = (y_all[sl], _part(w_all, sl), _part(o_all, sl), _part(wc_all, sl),
-                        block, None)
+                        block, None, _part(start_all, sl))
                 if scratch is not None:
-                    scratch.append(block, *last[:4])
+                    order = layout.order(block)  # rows as the stored copy keeps them
+                    if order is not None:
+                        y, w, o, wc, _, _, start = last
+                        last = (y[order], _part(w, order), _part(o, order), _part(wc, order),
+                                layout.reordered(block, order), None,
+                                _part(start, order))
+                    scratch.append(last[4], *last[:4])
             if last is not None:
-                yield last[:5] + (done,)
+                yield last[:5] + (done, last[6])
         if scratch is not None:
             scratch.commit()
     finally:
@@ -128,9 +155,23 @@ def row_blocks(source: Source, plan: PassPlan, scratch=None):
             scratch.discard()
 
 
-FUSED_SUMS = ("invalid_rows", "weight", "resid_ss", "deviance", "pearson", "response_ss",
-              "centred_ss", "centred_sum", "log_weight", "loglik", "null_deviance",
-              "null_weight", "null_score", "bad")
+@dataclass
+class StartModel:
+    """A previous fit of the same model, whose linear predictor starts a refit: its term
+    bases (their knots and levels, not the new fit's) and raw coefficients."""
+
+    design: Design
+    beta: np.ndarray
+
+    def linear_predictor(self, cols: dict) -> np.ndarray:
+        """X·β (n,) of a batch's columns (values outside the fit's ranges are clamped,
+        unseen levels count as the base level, as in scoring)."""
+        n = len(next(iter(cols.values()))) if cols else 0
+        out = np.zeros(n)
+        coef = self.design.pass_coefficients(self.beta)
+        for sl, enc in self.design.read(cols):
+            self.design.predict(enc, coef, out[sl])
+        return out
 
 
 def _outside_range(link, fam, rows: int, task: str) -> FitError:
@@ -151,94 +192,126 @@ def working_pass(source: Source, plan: PassPlan, callback=None, task: str = "pas
     callback = callback or _quiet
     fam, link, layout = plan.family, plan.link, plan.layout
     beta, beta_prev = plan.beta, plan.beta_prev
-    acc = layout.accumulator(numba.get_num_threads())
+    acc = layout.accumulator(numba.get_num_threads(), plan.blas_width)
     callback(Event("start", task, total=total))
     done = 0
     if beta is not None:
         coef = layout.pass_coefficients(beta)
     if beta_prev is not None:
         step = layout.pass_coefficients(beta - beta_prev)
-    three_scales = fam.loglik_at_three_scales
     scales = plan.scale_est * np.exp(np.array([-LOGLIK_STEP, 0.0, LOGLIK_STEP]))
-    fused = fam.working_kernel(link) if plan.fused and beta is not None else None
-    for y, w, o, wc, block, batch_done in row_blocks(source, plan, scratch):
+    fused = fam.working_kernel(link) if plan.fused else None
+    with_wc = plan.column_sums
+    for y, w, o, wc, block, batch_done, start in row_blocks(source, plan, scratch):
         m = len(y)
         w = w if w is not None else np.ones(m)
         o = o if o is not None else np.zeros(m)
-        wc = wc if wc is not None else w
+        wc = (wc if wc is not None else w) if with_wc else _NO_ROWS
         extra = {}
-        if fused is not None:  # one numba loop instead of some thirty numpy array passes
-            fitted = np.zeros(m)
-            layout.predict(block, coef, fitted)
-            if beta_prev is not None:
-                change = np.zeros(m)
-                layout.predict(block, step, change)
-                extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
-            wz, r = np.empty(m), np.empty(m)
-            sums = dict(zip(FUSED_SUMS, fused(fitted, o, y, w, plan.null_beta0, plan.y_mean,
-                                              wz, r)))
-            bad = sums.pop("bad")
-            if bad:
-                raise _outside_range(link, fam, int(bad), task)
-            acc.add(block, wz, r, wc)
-            acc.add_scalars(rows=m, **sums, **extra)
-            if batch_done is not None:
-                done = batch_done
-                callback(Event("advance", task, rows=done, total=total))
-            continue
-        if beta is None:
-            mu = _start_mu(fam, link, y, w, plan.y_mean)
-            eta = link.link(mu)
-            fitted = eta - o  # r is measured from the intercept-only anchor
+        base = None
+        if start is not None:      # the previous fit's linear predictor (a refit)
+            fitted = start
+            base = plan.start_shift
+        elif beta is None:         # the family's starting means
+            with np.errstate(all="ignore"):
+                fitted = link.link(_start_mu(fam, link, y, w, plan.y_mean)) - o
             base = plan.start_shift
         else:
             fitted = np.zeros(m)
             layout.predict(block, coef, fitted)
-            eta = fitted + o
-            with np.errstate(all="ignore"):
-                mu = link.inverse(eta)
-                extra["invalid_rows"] = np.count_nonzero(~fam.valid_mu(mu))
-            mu = fam.clip_mu(mu)
-            base = None
             if beta_prev is not None:
                 change = np.zeros(m)
                 layout.predict(block, step, change)
                 extra["max_eta_change"] = np.max(np.abs(change), initial=0.0)
-            if fam.estimates_nuisance:
-                extra["nuisance_score"], extra["nuisance_info"] = fam.nuisance_sums(y, mu, w)
-        dmu = link.mu_eta(eta)
-        var = fam.variance(mu)
-        wz = w * dmu * dmu / var
-        r = (y - mu) / dmu
-        if base is not None:
-            r = r + (fitted - base)
-        if not (np.all(np.isfinite(wz)) and np.all(np.isfinite(r))):
-            raise _outside_range(link, fam, int(np.sum(~np.isfinite(wz * r))), task)
-        acc.add(block, wz, r, wc)
-        # the intercept-and-offset (null) model, one IRLS step per pass
-        eta0 = o + plan.null_beta0
-        mu0 = fam.clip_mu(link.inverse(eta0))
-        dmu0 = link.mu_eta(eta0)
-        w0 = w * dmu0 * dmu0 / fam.variance(mu0)
-        if not three_scales:
-            ll = {"loglik": fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0}
+        if fused is not None:
+            wz, r = np.empty(m), np.empty(m)
+            sums = dict(zip(FUSED_SUMS, fused(fitted, o, y, w, plan.null_beta0, plan.y_mean,
+                                              scales, wz, r)))
+            bad = sums.pop("bad")
+            if bad:
+                sums = _drop_unusable(wz, r, sums, bad, beta is None, link, fam, task)
+            if base is not None:   # r is measured from the intercept-only anchor
+                r += fitted - base
+                sums["resid_ss"] = float(np.dot(wz * r, r))
+                sums["invalid_rows"] = 0.0
+            if not fam.estimates_nuisance or beta is None:
+                sums.pop("nuisance_score")
+                sums.pop("nuisance_info")
         else:
-            ll = dict(zip(("loglik_lo", "loglik", "loglik_hi"),
-                          (fam.loglik(y, mu, w, sc) for sc in scales)))
-        acc.add_scalars(
-            rows=m, weight=np.sum(w), resid_ss=np.sum(wz * r * r),
-            deviance=np.sum(w * fam.unit_deviance(y, mu)),
-            pearson=np.sum(w * (y - mu) ** 2 / var),
-            response_ss=np.sum(w * (y - mu) ** 2),
-            centred_ss=np.sum(w * (y - plan.y_mean) ** 2),
-            centred_sum=np.sum(w * (y - plan.y_mean)), log_weight=np.sum(np.log(w)),
-            null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
-            null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0), **ll, **extra)
+            wz, r, sums = _working_numpy(plan, fam, link, fitted, o, y, w, base, scales,
+                                         beta is not None, task)
+        acc.add(block, wz, r, wc)
+        acc.add_scalars(rows=m, **sums, **extra)
         if batch_done is not None:
             done = batch_done
             callback(Event("advance", task, rows=done, total=total))
     callback(Event("end", task, rows=done, total=total))
     return acc.finish()
+
+
+_NO_ROWS = np.zeros(0)
+
+
+def _drop_unusable(wz, r, sums: dict, bad: int, start: bool, link, fam, task: str) -> dict:
+    """Rows whose working weight or residual is not finite: at the start an error (the link
+    cannot start there); at an iterate, rows outside the mean space that the driver will
+    halve the step for (they are left out of this pass's sums, which it discards)."""
+    if start:
+        raise _outside_range(link, fam, bad, task)
+    unusable = ~np.isfinite(wz * r)
+    wz[unusable] = 0.0
+    r[unusable] = 0.0
+    sums = dict(sums)
+    sums["invalid_rows"] = max(float(sums.get("invalid_rows", 0.0)), float(bad))
+    for key, value in sums.items():
+        if not np.isfinite(value):
+            sums[key] = 0.0
+    return sums
+
+
+def _working_numpy(plan, fam, link, fitted, o, y, w, base, scales, evaluated: bool,
+                   task: str):
+    """The working model of a block in numpy (the reference for the fused loops): working
+    weights, residuals and the pass's sums. ``base``: the residuals are measured from the
+    intercept-only anchor (first pass); ``evaluated``: the block is at a fitted β (count
+    rows outside the mean space, nuisance sums)."""
+    eta = fitted + o
+    with np.errstate(all="ignore"):
+        mu = link.inverse(eta)
+        invalid = np.count_nonzero(~fam.valid_mu(mu)) if evaluated else 0
+    mu = fam.clip_mu(mu)
+    sums = {"invalid_rows": invalid}
+    if evaluated and fam.estimates_nuisance:
+        sums["nuisance_score"], sums["nuisance_info"] = fam.nuisance_sums(y, mu, w)
+    dmu = link.mu_eta(eta)
+    var = fam.variance(mu)
+    wz = w * dmu * dmu / var
+    r = (y - mu) / dmu
+    if base is not None:
+        r = r + (fitted - base)
+    bad = int(np.sum(~np.isfinite(wz * r)))
+    if bad:
+        sums = _drop_unusable(wz, r, sums, bad, not evaluated, link, fam, task)
+    # the intercept-and-offset (null) model, one IRLS step per pass
+    eta0 = o + plan.null_beta0
+    mu0 = fam.clip_mu(link.inverse(eta0))
+    dmu0 = link.mu_eta(eta0)
+    w0 = w * dmu0 * dmu0 / fam.variance(mu0)
+    if not fam.loglik_at_three_scales:
+        sums["loglik"] = fam.loglik(y, mu, w, 1.0) if fam.scale_known else 0.0
+    else:
+        sums.update(zip(("loglik_lo", "loglik", "loglik_hi"),
+                        (fam.loglik(y, mu, w, sc) for sc in scales)))
+    sums.update(
+        weight=np.sum(w), resid_ss=np.sum(wz * r * r),
+        deviance=np.sum(w * fam.unit_deviance(y, mu)),
+        pearson=np.sum(w * (y - mu) ** 2 / var),
+        response_ss=np.sum(w * (y - mu) ** 2),
+        centred_ss=np.sum(w * (y - plan.y_mean) ** 2),
+        centred_sum=np.sum(w * (y - plan.y_mean)), log_weight=np.sum(np.log(w)),
+        null_deviance=np.sum(w * fam.unit_deviance(y, mu0)),
+        null_weight=np.sum(w0), null_score=np.sum(w0 * (y - mu0) / dmu0))
+    return wz, r, sums
 
 
 def loglik_pass(source: Source, plan: PassPlan, scale: float, callback=None,
@@ -251,7 +324,7 @@ def loglik_pass(source: Source, plan: PassPlan, scale: float, callback=None,
     callback(Event("start", task, total=total_rows, message="log-likelihood"))
     total = 0.0
     done = 0
-    for y, w, o, _, block, batch_done in row_blocks(source, plan, scratch):
+    for y, w, o, _, block, batch_done, _ in row_blocks(source, plan, scratch):
         m = len(y)
         eta = o.copy() if o is not None else np.zeros(m)
         layout.predict(block, coef, eta)

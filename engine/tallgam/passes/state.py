@@ -16,6 +16,7 @@ cancellation of forming zᵀWz for responses with a large mean.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field, fields
 
 import numpy as np
@@ -44,6 +45,7 @@ SCALARS = (
     "max_eta_change",  # max |η − η_previous| over rows (merged by max, not by sum)
 )
 MAX_SCALARS = frozenset({"max_eta_change"})
+DENSE_ROWS = 4096  # rows made dense at a time for BLAS (a few MB)
 
 
 @dataclass
@@ -154,8 +156,11 @@ class ScalarSums:
 class Accumulator(ScalarSums):
     """Per-thread accumulators for one pass; :meth:`finish` reduces them in thread order."""
 
-    def __init__(self, pd: int, level_sizes: list[int], threads: int):
+    def __init__(self, pd: int, level_sizes: list[int], threads: int, blas_width: int = 4):
         L = sum(level_sizes)
+        self.blas_width = blas_width
+        self.rows_buffer = None
+        self.gram = None
         self.level_sizes = level_sizes
         self.level_offsets = np.concatenate([[0], np.cumsum(level_sizes)[:-1]]).astype(np.int32)
         self.threads = threads
@@ -171,16 +176,48 @@ class Accumulator(ScalarSums):
 
     def add(self, enc, w: np.ndarray, r: np.ndarray, wc: np.ndarray) -> None:
         """Add a block of encoded rows with working weights w, residuals r, constraint
-        weights wc (all shape (n,))."""
+        weights wc (all shape (n,); wc of length 0 when the column sums are not needed).
+
+        The dense group's XᵀWX comes from BLAS on the rows made dense (√w·x, in blocks of
+        ``DENSE_ROWS``) when the group is narrow enough for that to pay (pd ≤
+        ``BLAS_WIDTH``·q), else from the sparse kernel."""
+        blas = self.use_blas(enc.idx.shape[1])
         kernels.accumulate(enc.idx, enc.val, enc.lev, w, r, wc, self.dense, self.cross,
-                           self.diag, self.rhs_d, self.rhs_l, self.col_d, self.col_l)
+                           self.diag, self.rhs_d, self.rhs_l, self.col_d, self.col_l,
+                           not blas)
+        if blas:
+            self._dense_by_blas(enc, w)
         for (a, b), out in self.pairs.items():
             kernels.accumulate_level_pair(enc.lev[:, a], enc.lev[:, b], self.level_offsets[a],
                                           self.level_offsets[b], w, out)
 
+    def use_blas(self, q: int) -> bool:
+        pd = self.dense.shape[1]
+        return self.blas_width > 0 and 0 < pd <= self.blas_width * q
+
+    def _dense_by_blas(self, enc, w: np.ndarray) -> None:
+        from scipy.linalg.blas import dsyrk
+
+        n = enc.idx.shape[0]
+        pd = self.dense.shape[1]
+        if self.rows_buffer is None:
+            self.rows_buffer = np.empty((DENSE_ROWS, pd))
+            self.gram = np.zeros((pd, pd), order="F")
+        sw = np.sqrt(w)
+        # one BLAS thread: these products are small, and BLAS threads spinning beside
+        # numba's and other processes' made a pass 10-50 times slower (docs/performance.md)
+        with blas_controller().limit(limits=1, user_api="blas"):
+            for s in range(0, n, DENSE_ROWS):
+                e = min(n, s + DENSE_ROWS)
+                kernels.dense_rows(enc.idx[s:e], enc.val[s:e], sw[s:e], self.rows_buffer)
+                # rows_buffer[:k].T is a Fortran-ordered pd × k matrix: Gram += X̃ᵀX̃
+                self.gram = dsyrk(1.0, self.rows_buffer[:e - s].T, beta=1.0, c=self.gram,
+                                  trans=0, lower=0, overwrite_c=1)
 
     def finish(self) -> PassState:
         dense = ordered_sum(self.dense)
+        if self.gram is not None:
+            dense += np.triu(self.gram)
         dense = dense + np.triu(dense, 1).T
         return PassState(
             dense=dense, cross=ordered_sum(self.cross), diag=ordered_sum(self.diag),
@@ -204,6 +241,14 @@ def _level_rows(level_offsets: list[int], level_sizes: list[int], keep: list[int
                 ) -> np.ndarray:
     parts = [np.arange(level_offsets[t], level_offsets[t] + level_sizes[t]) for t in keep]
     return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+
+@functools.cache
+def blas_controller():
+    """The process's thread pools (threadpoolctl), found once: limiting them is then cheap."""
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
 
 
 def ordered_sum(per_thread: np.ndarray) -> np.ndarray:

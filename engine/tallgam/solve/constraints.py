@@ -158,25 +158,40 @@ class Constraints:
 
     def problem(self, state: PassState, anchor_beta: np.ndarray, scale: float | None
                 ) -> WorkingProblem:
+        """The working model of a pass in free coordinates. The pass ran at
+        ``anchor_beta``; when that lies outside the constrained space (the start from a fit
+        to a sample of the rows, whose constraints differ a little), the model is moved to
+        its projection Z Zᵀβ, exactly: the part δ outside adds Aδ to the right-hand side."""
         d = self.design
         offsets, sizes = list(d.level_offsets), d.level_sizes
+        anchor = self.to_free(anchor_beta)
+        delta = anchor_beta - self.to_raw(anchor)
+        moved = bool(np.any(delta != 0.0))
         if self.eliminated_term is None:
             gram = state.gram(offsets, sizes)
+            rhs, e = state.rhs, state.scalars["resid_ss"]
+            if moved:
+                g = gram @ delta
+                rhs, e = rhs + g, e + 2.0 * float(delta @ state.rhs) + float(delta @ g)
             A = self.Z.T @ gram @ self.Z
-            u = self.Z.T @ state.rhs
-            return WorkingProblem(A=0.5 * (A + A.T), u=u, e=state.scalars["resid_ss"],
-                                  anchor=self.to_free(anchor_beta), blocks=self.blocks,
-                                  n=state.scalars["rows"], scale=scale)
+            return WorkingProblem(A=0.5 * (A + A.T), u=self.Z.T @ rhs, e=e, anchor=anchor,
+                                  blocks=self.blocks, n=state.scalars["rows"], scale=scale)
         term = d.level_terms.index(d.bases[self.eliminated_term])
-        A = self.Z.T @ state.gram(offsets, sizes, skip=term) @ self.Z
-        diag, cross, rhs = state.level_block(term, offsets, sizes)
-        anchor = self.to_free(anchor_beta)
-        block = EliminatedBlock(d=diag, C=cross @ self.Z, u=rhs, anchor=anchor[self.n_kept:],
+        gram = state.gram(offsets, sizes, skip=term)
+        diag, cross, rhs_e = state.level_block(term, offsets, sizes)
+        rhs, e = state.rhs[self.kept], state.scalars["resid_ss"]
+        if moved:  # δ is zero on the eliminated term (its Z is the identity)
+            dk = delta[self.kept]
+            g = gram @ dk
+            ce = cross @ dk
+            e = e + 2.0 * float(dk @ rhs) + float(dk @ g)
+            rhs, rhs_e = rhs + g, rhs_e + ce
+        A = self.Z.T @ gram @ self.Z
+        block = EliminatedBlock(d=diag, C=cross @ self.Z, u=rhs_e, anchor=anchor[self.n_kept:],
                                 index=len(self.fixed) - 1)
-        return WorkingProblem(A=0.5 * (A + A.T), u=self.Z.T @ state.rhs[self.kept],
-                              e=state.scalars["resid_ss"], anchor=anchor[:self.n_kept],
-                              blocks=self.blocks, n=state.scalars["rows"], scale=scale,
-                              eliminated_block=block)
+        return WorkingProblem(A=0.5 * (A + A.T), u=self.Z.T @ rhs, e=e,
+                              anchor=anchor[:self.n_kept], blocks=self.blocks,
+                              n=state.scalars["rows"], scale=scale, eliminated_block=block)
 
     def check_identifiable(self, problem: WorkingProblem) -> None:
         """FitError naming the terms involved when some coefficients are undetermined

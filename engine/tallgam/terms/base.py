@@ -195,6 +195,12 @@ class Basis:
             cache[column] = pa.array(self.level_sets()[column], type=pa.string())
         return level_codes(cols[column], cache[column])
 
+    def knots_along(self, column: str) -> np.ndarray | None:
+        """Sorted distinct positions along a numeric input where the term's design row
+        changes form (knots); None when it varies smoothly everywhere (a straight line, a
+        multiplier). Binned passes round values to a grid finer than these intervals."""
+        return None
+
     # ------------------------------------------------------------------ dense stage
     def penalties(self) -> list[np.ndarray]:
         """Penalty matrices (n_raw × n_raw), one smoothing parameter each."""

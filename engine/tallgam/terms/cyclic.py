@@ -127,6 +127,8 @@ class CyclicBasis(Basis):
 
     def penalty_exponents(self):
         return [-3 * self.x_exp]
+    def knots_along(self, column):
+        return np.unique(self.knots) if column == self.spec.column else None
 
     def penalties(self):
         e = self.x_exp

@@ -302,6 +302,9 @@ class SplineBasis(Basis):
     def clamp_ranges(self):
         return {self.spec.column: self.range}
 
+    def knots_along(self, column):
+        return np.unique(self.knots) if column == self.spec.column else None
+
     def level_sets(self):
         return {self.spec.per: self.per_levels} if self.per_levels else {}
 

@@ -124,6 +124,12 @@ class SurfaceBasis(Basis):
     def n_raw(self) -> int:
         return int(np.prod(self.sizes))
 
+    def knots_along(self, column):
+        for knots, c in zip(self.margins, self.spec.columns):
+            if c == column:
+                return np.unique(knots)
+        return None
+
     def encode(self, cols, idx, val, col0):
         if len(self.margins) == 2:
             (k1, k2), (c1, c2) = self.margins, self.spec.columns
