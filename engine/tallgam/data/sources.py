@@ -123,16 +123,17 @@ class Source:
         at fault named, memory, interrupts), saying what was being done."""
         try:
             yield from self.query(text).to_arrow_reader(batch_rows)
-        except duckdb.Error as exc:
+        except (duckdb.Error, pa.ArrowException, OSError) as exc:
+            # a failure while Arrow pulls DuckDB's stream arrives as Arrow's error
             raise self._failure(exc, text, doing) from exc
 
-    def _failure(self, exc: duckdb.Error, text: str | None, doing: str) -> BaseException:
+    def _failure(self, exc: Exception, text: str | None, doing: str) -> BaseException:
         """The error to raise for a DuckDB error: Ctrl-C stays an interrupt, running out of
         memory an :class:`OutOfMemoryError`, anything else a :class:`DataError` naming the
         file at fault when one file of several is (found by reading them one by one)."""
-        if isinstance(exc, duckdb.InterruptException):
+        if isinstance(exc, duckdb.InterruptException) or "INTERRUPT Error" in str(exc):
             return KeyboardInterrupt()
-        if isinstance(exc, duckdb.OutOfMemoryException):
+        if isinstance(exc, duckdb.OutOfMemoryException) or "Out of Memory Error" in str(exc):
             return OutOfMemoryError(
                 f"DuckDB ran out of memory {doing} {self.label}: {clip(exc, 300)}. Use a "
                 "smaller batch_rows or fewer threads, or free memory")
