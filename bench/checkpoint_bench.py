@@ -24,7 +24,6 @@ sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
 
 from make_book import write_book  # noqa: E402
 from reference import reference_model  # noqa: E402
-
 from tallgam.solve import checkpoint as ck  # noqa: E402
 
 
