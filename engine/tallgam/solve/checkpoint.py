@@ -134,7 +134,7 @@ def data_identity(data, source) -> dict:
         return out
     h, rows = hashlib.sha256(), 0
     try:   # a table in memory, or a relation DuckDB runs: its rows in order
-        reader = source.relation.fetch_arrow_reader(1 << 16)
+        reader = source.relation.to_arrow_reader(1 << 16)
         h.update(str(reader.schema).encode("utf-8"))
         for batch in reader:
             rows += batch.num_rows

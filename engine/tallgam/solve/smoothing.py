@@ -637,7 +637,9 @@ def select(problem: WorkingProblem, criterion: str, fixed: list[float | None],
             break
         run = _newton(crit, better, tol, max_iter, "neighbour")
         search.runs.append(run)
-        if not run.value < best.value:
+        # a gain below NEIGHBOUR_GAIN is a flat stretch of the criterion, not another
+        # optimum: moving there only makes λ wander from one PIRLS pass to the next
+        if not run.value < best.value - NEIGHBOUR_GAIN * (1.0 + abs(best.value)):
             break
         best = run
     if best.sol is None:
@@ -694,6 +696,7 @@ GRID_POINTS = {2: 13, 3: 7}  # points per axis of the full grid for two or three
 STARTS = 3         # Newton starts from at most this many local minima of the sweep
 START_MARGIN = 5.0  # ... those within this much (unit-free criterion) of the best one
 RESTARTS = 3       # restarts from a better neighbour of the optimum
+NEIGHBOUR_GAIN = 1e-8  # a neighbour's optimum must be better by this share to be taken
 CYCLES = 3         # coordinate sweeps (four or more free λ) until nothing moves
 ROUNDING = 1e-11   # relative rounding of a criterion value (sums of n logs and log-determinants)
 
