@@ -132,3 +132,12 @@ def test_write_is_atomic_and_leaves_no_temporary_file(fitted, tmp_path):
         fitted.save(folder / "taken")
     assert sorted(p.name for p in folder.iterdir()) == ["model.json", "taken"]
     assert list((folder / "taken").iterdir()) == []
+
+
+def test_a_deep_path_keeps_its_file_name_in_the_message(tmp_path):
+    # messages cut long values in the middle: the file name at the end of a deep warehouse
+    # path survives (it was cut off at 80 characters)
+    deep = tmp_path.joinpath(*["extracts_2026_q4_motor_book"] * 8)
+    deep.mkdir(parents=True)
+    with pytest.raises(tg.ModelFileError, match=r"absent_model\.json' \(\d+ characters\)"):
+        tg.load(deep / "absent_model.json")

@@ -65,18 +65,20 @@ def nearest(name: str, candidates) -> str:
 
 
 #: longest user value echoed in a message (characters of its repr)
-VALUE_CHARS = 80
+VALUE_CHARS = 160
 #: longest message text taken over from a library (DuckDB, pyarrow) into one of ours
 MESSAGE_CHARS = 1000
 
 
 def shorten(value, limit: int = VALUE_CHARS) -> str:
-    """``repr(value)``, cut to about ``limit`` characters with the length said, so a message
-    never echoes a huge user value (a 30 MB string, a long list)."""
+    """``repr(value)``, cut in the middle to about ``limit`` characters with the length said,
+    so a message never echoes a huge user value (a 30 MB string, a long list); its start and
+    its end (a path's file name) are kept."""
     text = repr(value)
     if len(text) <= limit:
         return text
-    return f"{text[:limit]}... ({len(text):,} characters)"
+    head, tail = text[: limit // 3], text[-(limit * 2 // 3):]
+    return f"{head}...{tail} ({len(text):,} characters)"
 
 
 def clip(text, limit: int = MESSAGE_CHARS) -> str:
