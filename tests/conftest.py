@@ -24,3 +24,21 @@ def _single_threaded_blas():
         return
     with threadpool_limits(limits=1, user_api="blas"):
         yield
+
+
+@pytest.fixture
+def interrupt_fit():
+    """``interrupt_fit(fit, after_pass)`` calls ``fit(progress)`` with a progress callback
+    that raises KeyboardInterrupt (as Ctrl-C would) when data pass ``after_pass`` of the full
+    data ends, before its sums are recorded, and checks that the fit was interrupted."""
+    def run(fit, after_pass: int) -> None:
+        ended = [0]
+
+        def progress(event):
+            if event.kind == "end" and event.task.startswith("pass"):
+                ended[0] += 1
+                if ended[0] == after_pass:
+                    raise KeyboardInterrupt
+        with pytest.raises(KeyboardInterrupt):
+            fit(progress)
+    return run

@@ -112,17 +112,10 @@ def test_sigkill_then_resume_equals_uninterrupted_fit(book, reference, tmp_path,
     assert _leftovers(scratch) == []       # the dead run's scratch copy is gone too
 
 
-def test_cut_line_is_dropped_and_profile_replayed(book, tmp_path):
+def test_cut_line_is_dropped_and_profile_replayed(book, tmp_path, interrupt_fit):
     """A kill in the middle of writing a record leaves a partial last line: it is dropped."""
     ck = str(tmp_path / "c.ckpt")
-    events = []
-
-    def stop_after_second_pass(ev):
-        events.append(ev)
-        if ev.kind == "end" and ev.task == "pass 2":
-            raise KeyboardInterrupt
-    with pytest.raises(KeyboardInterrupt):
-        _model().fit(book, checkpoint=ck, progress=stop_after_second_pass, binned=False)
+    interrupt_fit(lambda p: _model().fit(book, checkpoint=ck, progress=p, binned=False), 2)
     with open(ck, "ab") as fh:
         fh.write(b'0123abc {"call": "working", "tag": "cut sh')
     again = []
@@ -136,17 +129,10 @@ def test_cut_line_is_dropped_and_profile_replayed(book, tmp_path):
                                atol=1e-12)
 
 
-def _interrupted(book, ck, model=None, **kw):
-    def stop(ev):
-        if ev.kind == "end" and ev.task == "pass 1":
-            raise KeyboardInterrupt
-    with pytest.raises(KeyboardInterrupt):
-        (model or _model()).fit(book, checkpoint=ck, progress=stop, **kw)
-
-
-def test_checkpoint_of_another_model_or_changed_data_is_refused(book, tmp_path):
+def test_checkpoint_of_another_model_or_changed_data_is_refused(book, tmp_path,
+                                                                interrupt_fit):
     ck = str(tmp_path / "c.ckpt")
-    _interrupted(book, ck)
+    interrupt_fit(lambda p: _model().fit(book, checkpoint=ck, progress=p), 1)
     other = tg.Model(response="y", family="poisson", exposure="e",
                      terms=[tg.spline("x", size=9)])
     with pytest.raises(SpecError, match="belongs to another fit"):
@@ -183,7 +169,7 @@ def test_not_a_checkpoint_and_bad_paths(book, tmp_path):
     assert fit.converged and not empty.exists()
 
 
-def test_tweedie_profile_and_table_source_resume(tmp_path):
+def test_tweedie_profile_and_table_source_resume(tmp_path, interrupt_fit):
     """A fit of many runs (the Tweedie power search) and an in-memory table resume too."""
     rng = np.random.default_rng(11)
     n = 8000
@@ -196,22 +182,14 @@ def test_tweedie_profile_and_table_source_resume(tmp_path):
                      terms=[tg.spline("x", size=8)])
     ref = model.fit(table)
     ck = str(tmp_path / "t.ckpt")
-    count = [0]
-
-    def stop(ev):
-        if ev.kind == "end" and ev.task.startswith("pass"):
-            count[0] += 1
-            if count[0] == 7:
-                raise KeyboardInterrupt
-    with pytest.raises(KeyboardInterrupt):
-        model.fit(table, checkpoint=ck, progress=stop)
+    interrupt_fit(lambda p: model.fit(table, checkpoint=ck, progress=p), 7)
     fit = model.fit(table, checkpoint=ck)
     assert fit.statistics["checkpoint"]["replayed_passes"] == 6
     assert fit.statistics["family_profile"]["value"] == pytest.approx(
         ref.statistics["family_profile"]["value"], rel=1e-9)
     np.testing.assert_allclose(fit.coefficients_raw, ref.coefficients_raw, rtol=1e-9)
     changed = table.set_column(1, "y", pa.array(y * 1.01))
-    _interrupted(changed, ck, model=model)
+    interrupt_fit(lambda p: model.fit(changed, checkpoint=ck, progress=p), 1)
     with pytest.raises(SpecError, match="another fit"):
         model.fit(table, checkpoint=ck)
 

@@ -122,22 +122,15 @@ def test_binned_cluster_fit_equals_local_binned_fit(book, client):
     assert any(n.startswith("binned passes") for n in remote.notes)
 
 
-def test_interrupted_cluster_fit_resumes_from_its_checkpoint(book, client, tmp_path):
+def test_interrupted_cluster_fit_resumes_from_its_checkpoint(book, client, tmp_path,
+                                                             interrupt_fit):
     # the checkpoint records what the cluster's passes returned; the resumed fit reads on
     folder, _ = book
     data = str(folder / "*.parquet")
     ckpt = str(tmp_path / "cluster.ckpt")
     whole = poisson_model().fit(data, batch_rows=1500, cluster=client)
-    count = [0]
-
-    def stop(ev):
-        if ev.kind == "end" and ev.task.startswith("pass"):
-            count[0] += 1
-            if count[0] == 3:
-                raise KeyboardInterrupt
-    with pytest.raises(KeyboardInterrupt):
-        poisson_model().fit(data, batch_rows=1500, cluster=client, checkpoint=ckpt,
-                            progress=stop)
+    interrupt_fit(lambda p: poisson_model().fit(data, batch_rows=1500, cluster=client,
+                                                checkpoint=ckpt, progress=p), 3)
     resumed = poisson_model().fit(data, batch_rows=1500, cluster=client, checkpoint=ckpt)
     assert resumed.statistics["checkpoint"]["replayed_passes"] == 2
     assert_same_fit(resumed, whole)

@@ -37,7 +37,7 @@ from tallgam.data.sources import Source, open_source, quote
 from tallgam.errors import DataError
 from tallgam.options import RunOptions
 from tallgam.outputs.bands import CellSums
-from tallgam.outputs.validation import bands_by, ordered_gini
+from tallgam.outputs.validation import bands_by, holdout_view, ordered_gini
 
 MOVE = 0.05                       # a policy "moves" when its premium changes by more than this
 RATIO_EDGES = (0.8, 0.9, 0.95, 0.98, 1.02, 1.05, 1.1, 1.2)
@@ -372,14 +372,8 @@ def banding_cost(tariff, data, *, where: str | None = None, actual: str | None =
 def cost_tables(tariff, path: str, dev: dict, measure: str, memory: str | None
                 ) -> BandingCost:
     """The cost tables from the scratch file of the hold-out pass, computed by DuckDB."""
-    con = duckdb.connect()
+    con = holdout_view(path, "expected_tariff / expected AS ratio", memory)
     try:
-        if memory:
-            con.execute(f"SET memory_limit = '{memory}'")
-            con.execute("SET preserve_insertion_order = false")
-        literal = "'" + path.replace("'", "''") + "'"
-        con.execute(f"CREATE VIEW h AS SELECT *, expected_tariff / expected AS ratio "
-                    f"FROM read_parquet({literal})")
         rows, exposure, actual, expected, expected_t = con.execute(
             "SELECT count(*), sum(exposure), sum(actual), sum(expected), "
             "sum(expected_tariff) FROM h").fetchall()[0]

@@ -266,14 +266,28 @@ def validate(fit, data, *, against=None, where: str | None = None,
             second.close()
 
 
-def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Validation:
+def holdout_view(path: str, extra: str, memory: str | None):
+    """A DuckDB connection holding the view ``h``: the rows of a hold-out scratch file
+    (Parquet) with the select items ``extra`` added. ``memory`` caps DuckDB's working memory
+    (it spills to disk beyond). The caller closes the connection."""
     con = connect()
     if memory:
         con.execute(f"SET memory_limit = '{memory}'")
         con.execute("SET preserve_insertion_order = false")
     literal = "'" + path.replace("'", "''") + "'"
-    con.execute(f"CREATE VIEW h AS SELECT *, expected / exposure AS rate "
-                f"FROM read_parquet({literal})")
+    con.execute(f"CREATE VIEW h AS SELECT *, {extra} FROM read_parquet({literal})")
+    return con
+
+
+def _tables(fit, path: str, sums: dict, challenger, memory: str | None) -> Validation:
+    con = holdout_view(path, "expected / exposure AS rate", memory)
+    try:
+        return _tables_of(con, fit, sums, challenger)
+    finally:
+        con.close()
+
+
+def _tables_of(con, fit, sums: dict, challenger) -> Validation:
     rows, exposure, actual, expected = con.execute(
         "SELECT count(*), sum(exposure), sum(actual), sum(expected) FROM h").fetchall()[0]
     null_dev = _flat_rate_deviance(fit, con, actual / exposure)

@@ -115,8 +115,8 @@ def digest(value) -> str:
 
 def data_identity(data, source) -> dict:
     """What identifies the data of a fit: for files, their paths, sizes and modification
-    times; for a database, its file's; for a query or relation, its text; for an
-    in-memory table, a digest of its contents."""
+    times; for ``tg.sql``, the query and its database file's; for a DuckDB relation, an
+    Arrow table or a data frame, a digest of its rows (one extra read of them)."""
     files = getattr(source, "files", None)
     if files:
         out = []
@@ -220,10 +220,13 @@ class Checkpoint:
         self.close()
         keep = self.records[:index]
         self.records = []
-        self._fh = open(self.path, "wb")
-        self._append({"format": FORMAT, "version": VERSION, "key": self.key})
-        for r in keep:
-            self._append(r)
+        try:
+            self._fh = open(self.path, "wb")
+            self._append({"format": FORMAT, "version": VERSION, "key": self.key})
+            for r in keep:
+                self._append(r)
+        except OSError as exc:
+            raise output_error(exc, self.path) from None
 
     def close(self) -> None:
         if self._fh is not None:
